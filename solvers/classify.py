@@ -56,13 +56,15 @@ class Tolerances:
         *varies* when its peak-to-peak over the window exceeds ``oscillation_rel * s_i + oscillation_abs``.
     min_periods : a varying signal *oscillates* only if at least this many full cycles lie in the window
         (cycles run between upward crossings of the signal's mid-range, with a hysteresis band of a quarter
-        of the half peak-to-peak, after removing the linear trend of the cycle means), and
+        of the half peak-to-peak, after removing the linear trend of the cycle means; so the window must
+        span about ``min_periods + 1`` periods), and
     period_spread : the cycle lengths agree to this relative spread ``(max - min) / mean``, and
-    amplitude_spread : the cycles' peak-to-peak values agree to this relative spread ``(max - min) / max``
-        (a decaying or growing oscillation is not periodic), and
-    samples_per_period : the history holds at least this many rows per cycle, so that no verdict rests on a
-        few sampling intervals. A run oscillates when every varying signal oscillates; its period is the
-        longest of theirs.
+    amplitude_spread : the cycles' amplitudes (root-mean-square deviation from the cycle's mean, robust to
+        noise) agree to this relative spread ``(max - min) / max`` (a decaying or growing oscillation is not
+        periodic), and
+    samples_per_period : the window holds at least this many history rows per cycle, so that no verdict
+        rests on a few sampling intervals. A run oscillates when every varying signal oscillates; its period
+        is the longest of theirs (a standing wave whose mean stays put shows half its period in the ranges).
     steady_rel : a history signal is *steady* (for the moving-pattern test) when its peak-to-peak over the
         window is at most ``steady_rel * s_i + oscillation_abs``.
     moving_rate, min_travel : a run whose means and ranges are steady and whose state stays non-uniform is a
@@ -105,9 +107,7 @@ class Tolerances:
             raise ValueError(msg)
 
     @classmethod
-    def from_solver(
-        cls, rtol: float, atol: float, *, time_scale: float = 1.0, **overrides: float
-    ) -> Tolerances:
+    def from_solver(cls, rtol: float, atol: float, *, time_scale: float = 1.0, **overrides: float) -> Tolerances:
         """Thresholds that follow the solver's accuracy.
 
         Differences within ten times the solver's tolerance are numerical noise, so the relative thresholds
@@ -304,7 +304,7 @@ def _check_inputs(
 
 def _uniform(u: np.ndarray, tol: Tolerances) -> tuple[bool, int]:
     """Whether every species' spatial range is within the uniform tolerance; and the worst species."""
-    excess = np.ptp(u, axis=1) / (tol.uniform_rel * np.max(np.abs(u), axis=1) + tol.uniform_abs)
+    excess = _ratio(np.ptp(u, axis=1), tol.uniform_rel * np.max(np.abs(u), axis=1) + tol.uniform_abs)
     worst = int(np.argmax(excess))
     return bool(excess[worst] <= 1.0), worst
 
@@ -312,18 +312,24 @@ def _uniform(u: np.ndarray, tol: Tolerances) -> tuple[bool, int]:
 def _baseline_distance(u: np.ndarray, b: np.ndarray, tol: Tolerances) -> tuple[float, int]:
     """Largest distance to the baseline in units of the baseline tolerance, and the species where it is."""
     scale = np.maximum(np.max(np.abs(u), axis=1), np.abs(b))
-    ratio = np.max(np.abs(u - b[:, None]), axis=1) / (tol.baseline_rel * scale + tol.baseline_abs)
+    ratio = _ratio(np.max(np.abs(u - b[:, None]), axis=1), tol.baseline_rel * scale + tol.baseline_abs)
     i = int(np.argmax(ratio))
     return float(ratio[i]), i
+
+
+def _ratio(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a / b`` for ``a, b >= 0``, with ``0 / 0 = 0`` and ``a / 0 = inf``."""
+    out = np.where(a > 0, np.inf, 0.0)
+    return np.divide(a, b, out=out, where=b > 0)
 
 
 def _settled_history(history: History, tol: Tolerances) -> bool:
     """Whether the trailing history rows keep the rate at or below ``tol.settled_rate`` long enough."""
     t = np.asarray(history.t, dtype=float)
     rate = np.asarray(history.rate, dtype=float)
-    if t.size < tol.min_samples or not np.all(np.isfinite(rate)):
+    if t.size < tol.min_samples:
         return False
-    high = np.flatnonzero(rate > tol.settled_rate)
+    high = np.flatnonzero(~(rate <= tol.settled_rate))
     first = 0 if high.size == 0 else int(high[-1]) + 1
     rows = t.size - first
     return rows >= tol.min_samples and t[-1] - t[min(first, t.size - 1)] >= tol.settled_span * (t[-1] - t[0])
@@ -341,27 +347,26 @@ def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, to
         return Outcome("diverged", "The history has non-finite values.")
     spread = hi - lo
     scale = np.maximum(np.max(np.abs(lo), axis=0), np.max(np.abs(hi), axis=0))
-    # step: oscillation of every varying signal
+    uniform_band = tol.uniform_rel * scale + tol.uniform_abs
+    # step: oscillation of every varying signal (ranges inside the uniform band are noise)
     periods, notes = [], []
     for i in range(mean.shape[1]):
         threshold = tol.oscillation_rel * scale[i] + tol.oscillation_abs
         for what, x in (("mean", mean[:, i]), ("range", spread[:, i])):
-            if np.ptp(x) <= threshold:
+            if np.ptp(x) <= threshold or (what == "range" and x.max() <= uniform_band[i]):
                 continue
             period, note = _periodicity(t, x, tol)
             if period is None:
                 notes.append(f"the {what} of species {i} {note}")
             else:
                 periods.append((period, f"the {what} of species {i}"))
-    uniform_band = tol.uniform_rel * scale + tol.uniform_abs
     if periods and not notes:
         period, name = max(periods)
         cycles = (t[-1] - t[0]) / period
         if np.all(spread <= uniform_band):
             return Outcome(
                 "oscillating-uniform",
-                f"Uniform throughout the window; {name} repeats with period {period:.4g} "
-                f"({cycles:.1f} cycles).",
+                f"Uniform throughout the window; {name} repeats with period {period:.4g} ({cycles:.1f} cycles).",
                 period=period,
             )
         return Outcome(
@@ -372,9 +377,7 @@ def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, to
         )
     # step: a moving pattern (steady means and ranges, non-uniform throughout, rate high)
     steady_band = tol.steady_rel * scale + tol.oscillation_abs
-    steady = bool(
-        np.all(np.ptp(mean, axis=0) <= steady_band) and np.all(np.ptp(spread, axis=0) <= steady_band)
-    )
+    steady = bool(np.all(np.ptp(mean, axis=0) <= steady_band) and np.all(np.ptp(spread, axis=0) <= steady_band))
     patterned = bool(np.all(np.any(spread > uniform_band, axis=1)))
     travel = float(np.sum(0.5 * (rate[1:] + rate[:-1]) * np.diff(t)))
     if steady and patterned and rate.min() >= tol.moving_rate and travel >= tol.min_travel:
@@ -434,15 +437,15 @@ def _periodicity(t: np.ndarray, x: np.ndarray, tol: Tolerances) -> tuple[float |
         return None, f"varies with {max(cycles, 0)} full cycles in the window ({tol.min_periods:g} needed)"
     lengths = np.diff(cuts)
     period = float((cuts[-1] - cuts[0]) / cycles)
-    if np.ptp(lengths) > tol.period_spread * period:
-        return None, f"varies with cycle lengths that differ by {np.ptp(lengths) / period:.0%}"
-    heights = np.array([np.ptp(y[(grid >= a) & (grid <= b)]) for a, b in zip(cuts[:-1], cuts[1:])])
-    if np.ptp(heights) > tol.amplitude_spread * heights.max():
-        return None, f"varies with cycle amplitudes that differ by {np.ptp(heights) / heights.max():.0%}"
     rows_per_cycle = t.size * period / (t[-1] - t[0])
     if rows_per_cycle < tol.samples_per_period:
         need = f"{tol.samples_per_period:g} needed"
         return None, f"varies with only {rows_per_cycle:.1f} history rows per cycle ({need})"
+    if np.ptp(lengths) > tol.period_spread * period:
+        return None, f"varies with cycle lengths that differ by {np.ptp(lengths) / period:.0%}"
+    heights = np.array([np.std(y[(grid >= a) & (grid < b)]) for a, b in zip(cuts[:-1], cuts[1:])])
+    if np.ptp(heights) > tol.amplitude_spread * heights.max():
+        return None, f"varies with cycle amplitudes that differ by {np.ptp(heights) / heights.max():.0%}"
     return period, "repeats"
 
 

@@ -9,6 +9,7 @@ import pytest
 import scipy.sparse as sp
 
 from solvers.classify import OUTCOMES, Outcome, Tolerances, classify, pattern_features
+from solvers.fem import disk_p1, interval_p1
 from solvers.grids import interval_fv, rectangle_fv
 from solvers.records import Discretisation, History
 
@@ -247,6 +248,28 @@ def test_p1_edge_region():
     assert f.regions == 1 and f.location == "edge"
 
 
+def test_p1_interval_matches_fv():
+    """The cosine cos(3 pi x / L) on P1 nodes gives the same regions and wavelength as on FV cells."""
+    disc = interval_p1(L, 240)
+    f = pattern_features(disc, _two_species(2.0 + np.cos(3 * np.pi * disc.coords[:, 0] / L)))
+    # closed form as in test_cosine_three_half_waves
+    assert f.regions == 2 and f.location == "both"
+    assert f.wavelength == pytest.approx(2 * L / 3)
+    assert f.areas == pytest.approx((L / 3, L / 6), abs=2 * L / 240)
+    assert f.spectral_wavelength is None
+
+
+def test_p1_disk_centre_and_edge_blobs():
+    """On the P1 disk a centred blob is interior, with area 2 pi ln2 sigma^2; a blob on the rim is at the edge."""
+    disc = disk_p1(1.0, refine=5)
+    sigma = 0.15
+    centre = pattern_features(disc, _two_species(1.0 + _gauss2(disc.coords, (0.0, 0.0), sigma)))
+    assert centre.regions == 1 and centre.location == "interior"
+    assert centre.areas[0] == pytest.approx(2 * np.pi * np.log(2) * sigma**2, rel=0.1)
+    rim = pattern_features(disc, _two_species(1.0 + _gauss2(disc.coords, (0.0, 1.0), sigma)))
+    assert rim.regions == 1 and rim.location == "edge"
+
+
 # ------------------------------------------------------------------------------------------------------
 # histories
 
@@ -286,6 +309,17 @@ def test_noisy_sine_period(rng):
     out = classify(disc, np.ones((1, disc.m)), h, BASE[:1], "reached-end")
     assert out.outcome == "oscillating-uniform", out.reason
     assert out.period == pytest.approx(period, rel=0.01)
+
+
+def test_tiny_spatial_noise_does_not_block_oscillation():
+    """A uniform oscillation whose spatial range decays inside the uniform band stays oscillating-uniform."""
+    disc = interval_fv(L, 20)
+    t = np.linspace(0, 40, 800)
+    h = _uniform_oscillation(t, 4.0)
+    spread = 1e-4 * np.exp(-t / 10.0)[:, None]
+    h = History(t, h.mean, h.mean - spread / 2, h.mean + spread / 2, h.rate)
+    out = classify(disc, np.ones((1, disc.m)), h, BASE[:1], "reached-end")
+    assert out.outcome == "oscillating-uniform", out.reason
 
 
 def test_oscillating_pattern_is_dynamic():
