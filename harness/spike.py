@@ -1,0 +1,583 @@
+"""Spike-limit (local perturbation) analysis of one homogeneous steady state.
+
+In the limit ``D_slow -> 0``, ``D_fast -> infinity`` the PDE reduces to the well-mixed globals
+``du/dt = f(u)`` plus a local copy ``s`` of the slow species, ``ds/dt = f_slow(s, u_fast)``, that sees the
+global fast species and never feeds back. At an HSS ``u*`` the local dynamics are the ODE
+``ds/dt = f_slow(s, u_fast*)``; its steady states are the *local states* (the HSS's own slow values among
+them), and a pulse of height ``h`` puts ``s = s* + sign * h * e`` with ``e`` one on every pulsed slow
+species. A pulse on a fast species spreads at once in this limit and has no effect, so fast entries of the
+pulse are left out of ``e``.
+
+The regime names are those of the design (``REGIMES``). ``well_mixed_stable`` is carried as it is: where
+it is False the whole system leaves the HSS, and the regime still describes the reduced system near it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.integrate import solve_ivp
+from scipy.optimize import brentq
+from scipy.stats import qmc
+
+from .equilibria import Equilibrium, all_roots
+from .kinetics import Kinetics
+
+__all__ = [
+    "REGIMES",
+    "LocalState",
+    "SpikePrediction",
+    "default_local_box",
+    "local_eigenvalues",
+    "local_states",
+    "spike_analysis",
+]
+
+REGIMES = ("no-pattern", "pulse-triggered", "self-patterning", "self-oscillating", "unresolved")
+
+
+@dataclass(frozen=True)
+class LocalState:
+    """A steady state of the local dynamics at fixed global fast species.
+
+    Attributes
+    ----------
+    values : ``(n_slow,)`` local slow concentrations.
+    eigenvalues : eigenvalues of the slow-slow block of the Jacobian there.
+    stable : every eigenvalue has a negative real part.
+    is_hss : this is the HSS's own slow values.
+    """
+
+    values: np.ndarray
+    eigenvalues: np.ndarray
+    stable: bool
+    is_hss: bool = False
+
+
+@dataclass(frozen=True)
+class SpikePrediction:
+    """What the spike-limit analysis predicts at one HSS.
+
+    Attributes
+    ----------
+    hss : the HSS analysed (None if it was lost).
+    well_mixed_stable : the HSS is stable in the well-mixed system (None without an HSS).
+    spike_stable : the local block ``J[slow, slow]`` at the HSS is stable (None without an HSS).
+    spike_eigenvalues : eigenvalues of that block.
+    local_states : all local states in the local box, sorted.
+    regime : one of ``REGIMES``.
+    reason : why this regime, in a sentence (always filled).
+    sign : the pulse's sign, +1 or -1.
+    threshold_up, threshold_down : least pulse height along ``+e`` / ``-e`` that leaves the HSS's basin
+        in the local dynamics; None where every height up to the edge of the local box returns.
+    threshold : the one of the two for ``sign``.
+    threshold_boundary : route 1, the distance along ``sign * e`` to an unstable local state on the ray
+        (for one slow species, the nearest local root beyond the HSS), or None where that does not apply.
+    threshold_ode : route 2, bisection on the height with trajectories of the local ODE, or None.
+    ode_bracket : ``(low, high)`` heights of the route-2 runs that returned and did not.
+    unbounded_above : height along ``sign * e`` beyond which the local dynamics leave the local box
+        (grow without bound, for this analysis), or None.
+    target : the local state reached beyond the threshold (or, spike-unstable, from the HSS), or None.
+    """
+
+    hss: Equilibrium | None
+    well_mixed_stable: bool | None
+    spike_stable: bool | None
+    spike_eigenvalues: np.ndarray
+    local_states: tuple[LocalState, ...]
+    regime: str
+    reason: str
+    sign: int
+    threshold_up: float | None = None
+    threshold_down: float | None = None
+    threshold: float | None = None
+    threshold_boundary: float | None = None
+    threshold_ode: float | None = None
+    ode_bracket: tuple[float, float] | None = None
+    unbounded_above: float | None = None
+    target: LocalState | None = None
+
+
+def local_eigenvalues(kin: Kinetics, state: np.ndarray) -> np.ndarray:
+    """Eigenvalues of the slow-slow block ``J[slow][:, slow]`` of the Jacobian at a full state ``(n,)``."""
+    slow = np.asarray(kin.slow, dtype=bool)
+    return np.linalg.eigvals(kin.jac(state)[np.ix_(slow, slow)])
+
+
+def default_local_box(kin: Kinetics, state: np.ndarray, *, factor: float = 100.0) -> tuple[np.ndarray, np.ndarray]:
+    """Local box ``[min(0, 2 s*), max(factor * max(|u*|, 1), 2 s*)]`` for each slow species.
+
+    A local spike can rise far above the HSS (the fast species feed it), hence the wide upper corner;
+    concentrations are nonnegative, hence the lower corner 0 (extended if the HSS itself is negative).
+    """
+    state = np.asarray(state, dtype=float)
+    s = state[np.asarray(kin.slow, dtype=bool)]
+    top = factor * max(float(np.max(np.abs(state), initial=0.0)), 1.0)
+    return np.minimum(0.0, 2 * s), np.maximum(top, 2 * s)
+
+
+def local_states(
+    kin: Kinetics,
+    state: np.ndarray,
+    lower: np.ndarray | None = None,
+    upper: np.ndarray | None = None,
+    *,
+    points: int = 2000,
+    starts: int = 64,
+    seed: int = 0,
+) -> tuple[LocalState, ...]:
+    """All roots of ``f_slow(s, u_fast*) = 0`` in the local box, the HSS's own ``s*`` among them.
+
+    One slow species: every sign change on a dense linear-plus-logarithmic grid (``points`` of each, and
+    ``s*``) is refined by ``brentq`` (roots where the sign does not change, such as double roots, are
+    missed). Several: multi-start Newton with deflation (see :func:`harness.equilibria.all_roots`).
+    """
+    loc = _Local.at(kin, state, lower, upper)
+    if loc.ns == 0:
+        return ()
+    if loc.ns == 1:
+        roots = _scalar_roots(loc, points)
+    else:
+        m = int(np.log2(max(2, starts)))
+        pts = qmc.Sobol(loc.ns, scramble=True, seed=seed).random_base2(m)
+        x0 = np.hstack([loc.s_star[:, None], (loc.lo + pts * (loc.hi - loc.lo)).T])
+        roots = all_roots(loc.fun, loc.jac, loc.lo, loc.hi, starts=x0, known=loc.s_star[None, :])
+    return tuple(sorted((loc.state_at(r) for r in roots), key=lambda st: tuple(st.values)))
+
+
+def spike_analysis(
+    kin: Kinetics,
+    hss: Equilibrium | None,
+    pulse_species: tuple[str, ...],
+    sign: int = 1,
+    *,
+    lower: np.ndarray | None = None,
+    upper: np.ndarray | None = None,
+    rtol: float = 1e-10,
+    use_boundary_hint: bool = True,
+) -> SpikePrediction:
+    """The spike-limit regime, pulse thresholds and local states at one HSS.
+
+    Parameters
+    ----------
+    kin : the kinetics at this sweep point.
+    hss : the HSS to analyse (None if lost: the regime is then "unresolved").
+    pulse_species : species the pulse raises; only the slow ones count (see the module docstring).
+    sign : +1 for a pulse up, -1 for a pulse down (the sign of the case's pulse height).
+    lower, upper : local box for the slow species (default :func:`default_local_box`). Heights are tried
+        up to its edge, and leaving it counts as growth without bound.
+    rtol : relative tolerance of the local ODE runs of route 2.
+    use_boundary_hint : where route 1 gives a height ``h1``, route 2 first runs ``h1 (1 -+ 1e-8)``; if
+        they straddle the basin boundary that bracket is route 2's answer, else it falls back to its own
+        scan and bisection (always used with False).
+
+    Returns
+    -------
+    The prediction; see :class:`SpikePrediction`.
+    """
+    if sign not in (1, -1):
+        msg = f"`sign` must be +1 or -1, got {sign}."
+        raise ValueError(msg)
+    unknown = [p for p in pulse_species if p not in kin.species]
+    if unknown:
+        msg = f"`pulse_species` has unknown species {unknown}; the species are {list(kin.species)}."
+        raise ValueError(msg)
+    base = {"sign": sign, "spike_eigenvalues": np.zeros(0), "local_states": ()}
+    if hss is None:
+        return SpikePrediction(hss=None, well_mixed_stable=None, spike_stable=None, regime="unresolved",
+                               reason="no homogeneous steady state (the baseline was lost)", **base)
+    loc = _Local.at(kin, hss.state, lower, upper)
+    if loc.ns == 0:
+        return SpikePrediction(hss=hss, well_mixed_stable=hss.stable, spike_stable=None, regime="unresolved",
+                               reason="the model has no slow species, so the spike limit is empty", **base)
+    states = local_states(kin, hss.state, loc.lo, loc.hi)
+    eig = local_eigenvalues(kin, hss.state)
+    stable = bool(np.all(eig.real < 0))
+    slow_names = [n for n, s in zip(kin.species, loc.slow) if s]
+    e = np.array([1.0 if n in pulse_species else 0.0 for n in slow_names])
+    common = {"hss": hss, "well_mixed_stable": hss.stable, "spike_stable": stable, "spike_eigenvalues": eig,
+              "local_states": states, "sign": sign}
+    if stable:
+        out = _pulse_regime(loc, states, e, sign, rtol, use_boundary_hint)
+    else:
+        out = _unstable_regime(loc, states, e, sign)
+    if not hss.stable:
+        out["reason"] += "; the HSS is unstable in the well-mixed system, so this describes the reduced system"
+    return SpikePrediction(**common, **out)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# The local system
+
+
+@dataclass(frozen=True)
+class _Local:
+    """The local ODE ``ds/dt = f_slow(s, u_fast*)`` at an HSS, with its box."""
+
+    kin: Kinetics
+    u_star: np.ndarray
+    slow: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+
+    @classmethod
+    def at(cls, kin: Kinetics, state, lower, upper) -> _Local:
+        """The local system at full state ``state``, box defaulting to :func:`default_local_box`."""
+        state = np.asarray(state, dtype=float)
+        slow = np.asarray(kin.slow, dtype=bool)
+        dlo, dhi = default_local_box(kin, state)
+        lo = dlo if lower is None else np.broadcast_to(np.asarray(lower, dtype=float), dlo.shape).copy()
+        hi = dhi if upper is None else np.broadcast_to(np.asarray(upper, dtype=float), dhi.shape).copy()
+        if not np.all(hi > lo):
+            msg = "`upper` must exceed `lower` for every slow species."
+            raise ValueError(msg)
+        return cls(kin=kin, u_star=state, slow=slow, lo=lo, hi=hi)
+
+    @property
+    def ns(self) -> int:
+        """Number of slow species."""
+        return int(self.slow.sum())
+
+    @property
+    def s_star(self) -> np.ndarray:
+        """The HSS's slow values."""
+        return self.u_star[self.slow]
+
+    @property
+    def width(self) -> np.ndarray:
+        """Box widths, the unit of every distance here."""
+        return self.hi - self.lo
+
+    def _full(self, s: np.ndarray) -> np.ndarray:
+        u = np.repeat(self.u_star[:, None], s.shape[1], axis=1)
+        u[self.slow] = s
+        return u
+
+    def fun(self, s: np.ndarray) -> np.ndarray:
+        """``f_slow`` at local states ``s (ns, m)``."""
+        return self.kin.reaction(self._full(s))[self.slow]
+
+    def jac(self, s: np.ndarray) -> np.ndarray:
+        """Slow-slow Jacobian block ``(ns, ns, m)`` at ``s (ns, m)``."""
+        return self.kin.jacobian(self._full(s))[np.ix_(self.slow, self.slow)]
+
+    def state_at(self, s: np.ndarray) -> LocalState:
+        """The local state at ``s``, with its stability."""
+        s = np.asarray(s, dtype=float)
+        eig = np.linalg.eigvals(self.jac(s[:, None])[:, :, 0])
+        is_hss = bool(np.max(np.abs(s - self.s_star) / self.width) <= 1e-9)
+        return LocalState(values=s, eigenvalues=eig, stable=bool(np.all(eig.real < 0)), is_hss=is_hss)
+
+
+def _scalar_roots(loc: _Local, points: int) -> list[np.ndarray]:
+    """Roots of the scalar local equation on the box, ``s*`` itself included exactly."""
+    lo, hi, s0 = float(loc.lo[0]), float(loc.hi[0]), float(loc.s_star[0])
+    width = hi - lo
+    grid = np.unique(np.concatenate([np.linspace(lo, hi, points), lo + np.geomspace(1e-10 * width, width, points),
+                                     [s0]]))
+    grid = grid[(grid >= lo) & (grid <= hi)]
+    with np.errstate(all="ignore"):
+        vals = loc.fun(grid[None, :])[0]
+    finite = np.isfinite(vals)
+    roots = list(grid[finite & (vals == 0)])
+    sgn = np.sign(np.where(finite, vals, 0.0))
+    for i in np.flatnonzero(sgn[:-1] * sgn[1:] < 0):
+        roots.append(brentq(lambda x: float(loc.fun(np.array([[x]]))[0, 0]), grid[i], grid[i + 1],
+                            xtol=1e-15 * max(width, 1.0), rtol=4 * np.finfo(float).eps))
+    roots = [r for r in roots if abs(r - s0) > 1e-9 * width] + [s0]
+    roots.sort()
+    distinct = [r for i, r in enumerate(roots) if i == 0 or r - roots[i - 1] > 1e-12 * width]
+    return [np.array([r]) for r in distinct]
+
+
+# ---------------------------------------------------------------------------------------------------------
+# Trajectories of the local ODE
+
+
+@dataclass(frozen=True)
+class _Fate:
+    """Where one local trajectory went: "reached" (``index`` into the attractors), "escaped" (left the box),
+    "oscillates", or "unsettled" (none of these by the time limit)."""
+
+    kind: str
+    index: int | None = None
+
+
+def _fate(
+    loc: _Local, s0: np.ndarray, attractors: list[np.ndarray], others: list[np.ndarray], rtol: float
+) -> _Fate:
+    """Run the local ODE from ``s0`` until it nears a stable local state, leaves the box or oscillates.
+
+    "Near" is a ball around each of the ``attractors`` smaller than a quarter of its distance to any other
+    local state (``others`` are the unstable ones) and than half its distance to ``s0``. Implicit Radau
+    with the analytic Jacobian; the run goes in chunks of growing length (from ``50 / rate``, ``rate`` the
+    fastest local eigenvalue) and stops at the first event.
+    """
+    width = loc.width
+    lo_out, hi_out = loc.lo - 1e-6 * width, loc.hi + 1e-6 * width
+    if np.any(s0 < lo_out) or np.any(s0 > hi_out):
+        return _Fate("escaped")
+    pts = np.array(attractors).reshape(-1, loc.ns)
+    every = np.vstack([pts, np.array(others).reshape(-1, loc.ns)])
+    sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1:]]
+    radius = min([1e-3, *(0.25 * x for x in sep)])
+
+    def near(k: int):
+        rk = min(radius, 0.5 * float(np.sqrt(np.sum(((s0 - pts[k]) / width) ** 2))))
+
+        def event(t, y):
+            return float(np.sum(((y - pts[k]) / width) ** 2) - rk**2)
+
+        event.terminal, event.direction = True, -1
+        return event
+
+    def leave(t, y):
+        return float(min(np.min((y - lo_out) / width), np.min((hi_out - y) / width)))
+
+    leave.terminal, leave.direction = True, -1
+    events = [near(k) for k in range(len(pts))] + [leave]
+
+    def rhs(t, y):
+        return loc.fun(y[:, None])[:, 0]
+
+    def jac(t, y):
+        return loc.jac(y[:, None])[:, :, 0]
+
+    rate = max(float(np.max(np.abs(np.linalg.eigvals(jac(0.0, s))))) for s in [loc.s_star, *pts])
+    span, t0, y, prev_amp = 50.0 / max(rate, 1e-12), 0.0, np.array(s0, dtype=float), None
+    atol = 1e-2 * rtol * width
+    with np.errstate(all="ignore"):
+        for _ in range(16):
+            sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=events, rtol=rtol, atol=atol)
+            if sol.status == 1:
+                hit = [k for k, te in enumerate(sol.t_events) if te.size]
+                k = hit[0]
+                return _Fate("escaped") if k == len(pts) else _Fate("reached", k)
+            if sol.status < 0 or not np.all(np.isfinite(sol.y[:, -1])):
+                return _Fate("escaped")
+            amp = _cycle_amplitude(sol.y / width[:, None])
+            if amp is not None and prev_amp is not None and abs(amp - prev_amp) <= 0.02 * amp:
+                return _Fate("oscillates")
+            prev_amp = amp
+            t0, y, span = sol.t[-1], sol.y[:, -1], 1.5 * span
+    return _Fate("unsettled")
+
+
+def _cycle_amplitude(y: np.ndarray) -> float | None:
+    """Peak-to-peak size of a scaled trajectory chunk ``(ns, steps)`` if it has three maxima, else None."""
+    spread = np.ptp(y, axis=1)
+    k = int(np.argmax(spread))
+    d = np.diff(y[k])
+    maxima = int(np.sum((d[:-1] > 0) & (d[1:] <= 0)))
+    return float(spread[k]) if maxima >= 3 and spread[k] > 1e-6 else None
+
+
+# ---------------------------------------------------------------------------------------------------------
+# Thresholds and regimes
+
+
+@dataclass(frozen=True)
+class _Ray:
+    """What pulses along one direction do: the two routes, the bracket, the fate beyond, the growth."""
+
+    boundary: float | None = None
+    ode: float | None = None
+    bracket: tuple[float, float] | None = None
+    fate: _Fate | None = None
+    unbounded: float | None = None
+
+    @property
+    def threshold(self) -> float | None:
+        """Route 1 where it applies and route 2 did not contradict it, else route 2."""
+        if self.boundary is not None and (self.bracket is None or _within(self.boundary, self.bracket)):
+            return self.boundary
+        return self.ode
+
+
+def _within(h: float, bracket: tuple[float, float], rtol: float = 1e-6) -> bool:
+    lo, hi = bracket
+    return lo * (1 - rtol) <= h <= hi * (1 + rtol)
+
+
+def _max_height(loc: _Local, d: np.ndarray) -> float:
+    """Largest ``h`` with ``s* + h d`` in the box (``d`` nonzero)."""
+    with np.errstate(divide="ignore"):
+        up = np.where(d > 0, (loc.hi - loc.s_star) / d, np.inf)
+        down = np.where(d < 0, (loc.lo - loc.s_star) / d, np.inf)
+    return float(min(np.min(up), np.min(down)))
+
+
+def _boundary(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray) -> float | None:
+    """Route 1: height to the nearest unstable local state on the ray ``s* + h d`` (``h > 0``)."""
+    best = None
+    for st in states:
+        if st.stable or st.is_hss:
+            continue
+        v = st.values - loc.s_star
+        h = float(v @ d / (d @ d))
+        if h > 0 and np.max(np.abs(v - h * d) / loc.width) <= 1e-8 and (best is None or h < best):
+            best = h
+    return best
+
+
+def _ray(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray, rtol: float, ode: bool, hint: bool) -> _Ray:
+    """Thresholds along ``d``: route 1, and route 2 if ``ode`` (for one slow species only where route 1
+    finds a boundary, since the flow is then monotone between roots)."""
+    hmax = _max_height(loc, d)
+    boundary = _boundary(loc, states, d)
+    scalar = loc.ns == 1
+    unbounded = _scalar_unbounded(loc, states, d, hmax) if scalar else None
+    if hmax <= 0 or not ode or (scalar and boundary is None):
+        return _Ray(boundary=boundary, unbounded=unbounded)
+    attractors = [st.values for st in states if st.stable]
+    others = [st.values for st in states if not st.stable]
+    home = next(k for k, st in enumerate(s for s in states if s.stable) if st.is_hss)
+
+    def fate(h: float) -> _Fate:
+        return _fate(loc, loc.s_star + h * d, attractors, others, rtol)
+
+    def left(f: _Fate) -> bool:
+        return not (f.kind == "reached" and f.index == home)
+
+    # step: route 1's hint, checked by two runs that must straddle the boundary
+    if hint and scalar and boundary < hmax:
+        lo, hi = boundary * (1 - 1e-8), boundary * (1 + 1e-8)
+        f_hi = fate(hi)
+        if left(f_hi) and not left(fate(lo)):
+            return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
+    # step: coarse scan of heights, then bisection on the first that does not return
+    heights = hmax * 4.0 ** -np.arange(10, -1, -1)
+    fates = [fate(h) for h in heights]
+    first = next((i for i, f in enumerate(fates) if left(f)), None)
+    if first is None:
+        return _Ray(boundary=boundary, unbounded=unbounded)
+    lo, hi, f_hi = (0.0 if first == 0 else float(heights[first - 1])), float(heights[first]), fates[first]
+    if hint and boundary is not None and lo < boundary * (1 - 1e-8) and boundary * (1 + 1e-8) < hi:
+        f_b = fate(boundary * (1 + 1e-8))
+        if left(f_b) and not left(fate(boundary * (1 - 1e-8))):
+            lo, hi, f_hi = boundary * (1 - 1e-8), boundary * (1 + 1e-8), f_b
+    while hi - lo > 1e-9 * hi:
+        mid = 0.5 * (lo + hi)
+        f_mid = fate(mid)
+        if left(f_mid):
+            hi, f_hi = mid, f_mid
+        else:
+            lo = mid
+    if not scalar:
+        unbounded = _scan_unbounded(fate, heights, fates, first, hi, f_hi)
+    return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
+
+
+def _scalar_unbounded(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray, hmax: float) -> float | None:
+    """One slow species: if the flow at the box edge along ``d`` points outward, the height of the last root
+    before it (beyond that every pulse leaves the box)."""
+    if hmax <= 0:
+        return None
+    edge = loc.s_star + hmax * d
+    with np.errstate(all="ignore"):
+        flow = float(loc.fun(edge[:, None])[0, 0] * d[0])
+    if not flow > 0:
+        return None
+    beyond = [float((st.values - loc.s_star) @ d) for st in states]
+    beyond = [h for h in beyond if h > 0]
+    return max(beyond, default=0.0)
+
+
+def _scan_unbounded(fate, heights, fates, first: int, hi: float, f_hi: _Fate) -> float | None:
+    """Several slow species: least scanned height beyond the threshold that escapes, refined by bisection."""
+    if f_hi.kind == "escaped":
+        return hi
+    esc = next((i for i in range(first, len(fates)) if fates[i].kind == "escaped"), None)
+    if esc is None:
+        return None
+    lo, top = (hi if esc == first else float(heights[esc - 1])), float(heights[esc])
+    while top - lo > 1e-6 * top:
+        mid = 0.5 * (lo + top)
+        if fate(mid).kind == "escaped":
+            top = mid
+        else:
+            lo = mid
+    return top
+
+
+def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hint: bool) -> dict:
+    """Regime, thresholds and target for a spike-stable HSS, judged on pulses of the requested sign."""
+    if not e.any():
+        return {"regime": "no-pattern",
+                "reason": "spike-stable HSS and no pulse species is slow (a fast pulse has no effect here)"}
+    rays = {s: _ray(loc, states, s * e, rtol, ode=(s == sign or loc.ns > 1), hint=hint) for s in (1, -1)}
+    ray = rays[sign]
+    out = {"threshold_up": rays[1].threshold, "threshold_down": rays[-1].threshold,
+           "threshold": ray.threshold, "threshold_boundary": ray.boundary, "threshold_ode": ray.ode,
+           "ode_bracket": ray.bracket, "unbounded_above": ray.unbounded}
+    word = "up" if sign > 0 else "down"
+    other = rays[-sign].threshold
+    note = "" if other is None else f" (a pulse of the other sign leaves above {other:.6g})"
+    if ray.threshold is None:
+        out.update(regime="no-pattern", reason=f"spike-stable HSS and every pulse {word} decays{note}")
+        return out
+    if ray.fate is None:  # route 1 only: one slow species, ODE not asked for
+        beyond = _next_stable(loc, states, sign * e, ray.threshold)
+        kind = "escaped" if beyond is None else "reached"
+    else:
+        kind = ray.fate.kind
+        stable = [st for st in states if st.stable]
+        beyond = stable[ray.fate.index] if kind == "reached" else None
+    if kind == "reached":
+        out.update(regime="pulse-triggered", target=beyond,
+                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a stable local state")
+    elif kind == "oscillates":
+        out.update(regime="pulse-triggered",
+                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a local oscillation")
+    elif kind == "escaped":
+        out.update(regime="no-pattern", unbounded_above=ray.threshold if ray.unbounded is None else ray.unbounded,
+                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} grows without bound in the "
+                          "local dynamics, which is not a pattern")
+    else:
+        out.update(regime="unresolved",
+                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} did not settle")
+    out["reason"] += note
+    return out
+
+
+def _next_stable(loc: _Local, states, d: np.ndarray, h: float) -> LocalState | None:
+    """One slow species: the stable local state next beyond height ``h`` along ``d``, if any before a root."""
+    ahead = sorted((float((st.values - loc.s_star) @ d), st) for st in states if (st.values - loc.s_star) @ d > h)
+    return ahead[0][1] if ahead and ahead[0][1].stable else None
+
+
+def _unstable_regime(loc: _Local, states, e: np.ndarray, sign: int) -> dict:
+    """Regime for a spike-unstable HSS: where the local dynamics go from either side of its unstable mode."""
+    jm = loc.jac(loc.s_star[:, None])[:, :, 0]
+    lam, vec = np.linalg.eig(jm)
+    v = vec[:, int(np.argmax(lam.real))]
+    v = v.real if np.linalg.norm(v.real) > 1e-8 else v.imag
+    v = v / np.max(np.abs(v) / loc.width)
+    if e.any() and v @ e < 0:
+        v = -v
+    v = sign * v  # first side: along the pulse
+    stable = [st for st in states if st.stable]
+    attractors = [st.values for st in stable]
+    others = [st.values for st in states if not st.stable]
+    fates, sides = [], []
+    for side, name in ((1, "along the pulse"), (-1, "against it")):
+        s0 = loc.s_star + side * 1e-4 * v
+        if np.all(s0 >= loc.lo) and np.all(s0 <= loc.hi):  # a side outside the box (e.g. negative) is moot
+            fates.append(_fate(loc, s0, attractors, others, 1e-8))
+            sides.append(name)
+    kinds = [f.kind for f in fates]
+    if not kinds:
+        return {"regime": "unresolved", "reason": "spike-unstable HSS whose unstable mode leaves the local box"}
+    if "escaped" in kinds:
+        seen = ", ".join(f"{n}: {k}" for n, k in zip(sides, kinds))
+        return {"regime": "unresolved",
+                "reason": f"spike-unstable HSS and the local dynamics grow without bound ({seen})"}
+    if "reached" in kinds:
+        f = fates[kinds.index("reached")]
+        return {"regime": "self-patterning", "target": stable[f.index],
+                "reason": f"spike-unstable HSS; the local dynamics settle on a stable local state ({'/'.join(kinds)})"}
+    if "oscillates" in kinds:
+        return {"regime": "self-oscillating",
+                "reason": "spike-unstable HSS; the local dynamics settle on an oscillation"}
+    return {"regime": "unresolved", "reason": "spike-unstable HSS and the local dynamics did not settle"}
