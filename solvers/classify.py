@@ -45,10 +45,10 @@ class Tolerances:
         ``max u_i - min u_i`` is at most ``uniform_rel * s_i + uniform_abs``.
     baseline_rel, baseline_abs : a uniform state is *the baseline* when every species satisfies
         ``max |u_i - b_i| <= baseline_rel * max(s_i, |b_i|) + baseline_abs``, ``b`` the baseline HSS.
-    settled_rate : a run the stepper did not mark settled still counts as *settled* when the history's
-        relative rate ``||du/dt|| / ||u||`` (units 1/time) stays at or below this over the trailing rows,
-        at least ``min_samples`` of them covering at least ``settled_span`` of the recorded time.
-    settled_span : see ``settled_rate``; a fraction of the recorded time span.
+    settled_rate, settled_window : a run the stepper did not mark settled still counts as *settled* when
+        the history's relative rate ``||du/dt|| / ||u||`` (units 1/time) stays at or below ``settled_rate``
+        over the trailing rows, at least ``min_samples`` of them spanning at least ``settled_window`` time
+        units (the stepper's own settling rule, `solvers.settle.SettleRule`, has the same two numbers).
     min_samples : fewest history rows on which any verdict from the history is taken.
     window : the recent history examined for oscillation and motion: the last ``window`` fraction of the
         recorded time span.
@@ -78,8 +78,8 @@ class Tolerances:
     uniform_abs: float = 1e-8
     baseline_rel: float = 1e-3
     baseline_abs: float = 1e-8
-    settled_rate: float = 1e-5
-    settled_span: float = 0.05
+    settled_rate: float = 1e-6
+    settled_window: float = 20.0
     min_samples: int = 8
     window: float = 0.5
     oscillation_rel: float = 1e-3
@@ -89,12 +89,13 @@ class Tolerances:
     amplitude_spread: float = 0.1
     samples_per_period: float = 8.0
     steady_rel: float = 0.05
-    moving_rate: float = 1e-3
+    moving_rate: float = 1e-4
     min_travel: float = 3.0
     bound: float = np.inf
 
     def __post_init__(self) -> None:
-        for name in ("uniform_rel", "baseline_rel", "oscillation_rel", "steady_rel", "settled_rate"):
+        positive = ("uniform_rel", "baseline_rel", "oscillation_rel", "steady_rel", "settled_rate")
+        for name in (*positive, "settled_window"):
             if not getattr(self, name) > 0:
                 msg = f"`{name}` must be positive, got {getattr(self, name)!r}."
                 raise ValueError(msg)
@@ -107,22 +108,31 @@ class Tolerances:
             raise ValueError(msg)
 
     @classmethod
-    def from_solver(cls, rtol: float, atol: float, *, time_scale: float = 1.0, **overrides: float) -> Tolerances:
+    def from_solver(
+        cls,
+        rtol: float,
+        atol: float,
+        *,
+        settle_tol: float = 1e-6,
+        settle_window: float = 20.0,
+        **overrides: float,
+    ) -> Tolerances:
         """Thresholds that follow the solver's accuracy.
 
         Differences within ten times the solver's tolerance are numerical noise, so the relative thresholds
         (uniform, baseline, oscillation) are ``10 * rtol`` clipped to ``[1e-6, 1e-2]`` (never looser than
-        1 %), the absolute floors are ``10 * atol``, a run is settled below ``settled_rate = rtol /
-        time_scale`` (a relative change of ``rtol`` per ``time_scale``, the kinetics' time unit) and moves
-        above ``moving_rate = 100 * settled_rate``. ``overrides`` replace any field by name.
+        1 %) and the absolute floors are ``10 * atol``. Settling follows the stepper's rule: the rate
+        threshold is ``max(settle_tol, rtol / settle_window)`` (a drift below ``rtol`` over the whole window
+        is not resolved by the error control) over ``settle_window`` time units; a pattern moves when its
+        rate stays above ``100`` times that. ``overrides`` replace any field by name.
         """
-        if not (rtol > 0 and atol >= 0 and time_scale > 0):
-            got = f"{rtol!r}, {atol!r}, {time_scale!r}"
-            msg = f"`rtol` and `time_scale` must be positive and `atol` >= 0, got {got}."
+        if not (rtol > 0 and atol >= 0 and settle_tol > 0 and settle_window > 0):
+            got = f"{rtol!r}, {atol!r}, {settle_tol!r}, {settle_window!r}"
+            msg = f"`rtol`, `settle_tol` and `settle_window` must be positive and `atol` >= 0, got {got}."
             raise ValueError(msg)
         rel = float(np.clip(10.0 * rtol, 1e-6, 1e-2))
         floor = 10.0 * float(atol)
-        settled = float(rtol) / time_scale
+        settled = max(float(settle_tol), float(rtol) / settle_window)
         base = cls(
             uniform_rel=rel,
             uniform_abs=floor,
@@ -131,6 +141,7 @@ class Tolerances:
             oscillation_rel=rel,
             oscillation_abs=floor,
             settled_rate=settled,
+            settled_window=float(settle_window),
             moving_rate=100.0 * settled,
         )
         return replace(base, **overrides)
@@ -332,7 +343,7 @@ def _settled_history(history: History, tol: Tolerances) -> bool:
     high = np.flatnonzero(~(rate <= tol.settled_rate))
     first = 0 if high.size == 0 else int(high[-1]) + 1
     rows = t.size - first
-    return rows >= tol.min_samples and t[-1] - t[min(first, t.size - 1)] >= tol.settled_span * (t[-1] - t[0])
+    return rows >= tol.min_samples and t[-1] - t[min(first, t.size - 1)] >= tol.settled_window
 
 
 def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, tol: Tolerances) -> Outcome:
@@ -366,7 +377,8 @@ def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, to
         if np.all(spread <= uniform_band):
             return Outcome(
                 "oscillating-uniform",
-                f"Uniform throughout the window; {name} repeats with period {period:.4g} ({cycles:.1f} cycles).",
+                f"Uniform throughout the window; {name} repeats with period {period:.4g} "
+                f"({cycles:.1f} cycles).",
                 period=period,
             )
         return Outcome(
@@ -377,7 +389,8 @@ def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, to
         )
     # step: a moving pattern (steady means and ranges, non-uniform throughout, rate high)
     steady_band = tol.steady_rel * scale + tol.oscillation_abs
-    steady = bool(np.all(np.ptp(mean, axis=0) <= steady_band) and np.all(np.ptp(spread, axis=0) <= steady_band))
+    steady = bool(np.all(np.ptp(mean, axis=0) <= steady_band))
+    steady = steady and bool(np.all(np.ptp(spread, axis=0) <= steady_band))
     patterned = bool(np.all(np.any(spread > uniform_band, axis=1)))
     travel = float(np.sum(0.5 * (rate[1:] + rate[:-1]) * np.diff(t)))
     if steady and patterned and rate.min() >= tol.moving_rate and travel >= tol.min_travel:

@@ -260,7 +260,7 @@ def test_p1_interval_matches_fv():
 
 
 def test_p1_disk_centre_and_edge_blobs():
-    """On the P1 disk a centred blob is interior, with area 2 pi ln2 sigma^2; a blob on the rim is at the edge."""
+    """On the P1 disk a centred blob is interior (area 2 pi ln2 sigma^2); a blob on the rim is at the edge."""
     disc = disk_p1(1.0, refine=5)
     sigma = 0.15
     centre = pattern_features(disc, _two_species(1.0 + _gauss2(disc.coords, (0.0, 0.0), sigma)))
@@ -415,9 +415,11 @@ def test_bad_inputs_raise():
 
 def test_tolerances_follow_solver():
     """`from_solver` scales the thresholds with rtol/atol and clips the relative ones to [1e-6, 1e-2]."""
-    tol = Tolerances.from_solver(1e-5, 1e-9, time_scale=2.0)
+    tol = Tolerances.from_solver(1e-5, 1e-9, settle_window=2.0)
     assert tol.uniform_rel == pytest.approx(1e-4) and tol.uniform_abs == pytest.approx(1e-8)
     assert tol.settled_rate == pytest.approx(5e-6) and tol.moving_rate == pytest.approx(5e-4)
+    assert tol.settled_window == 2.0
+    assert Tolerances.from_solver(1e-8, 1e-9).settled_rate == pytest.approx(1e-6)
     assert Tolerances.from_solver(1e-1, 0.0).uniform_rel == pytest.approx(1e-2)
     assert Tolerances.from_solver(1e-5, 1e-9, window=0.3).window == 0.3
     with pytest.raises(ValueError, match="`window` must lie"):
