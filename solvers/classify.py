@@ -70,7 +70,10 @@ class Tolerances:
     moving_rate, min_travel : a run whose means and ranges are steady and whose state stays non-uniform is a
         *moving pattern* when the rate stays at or above ``moving_rate`` in the whole window and its time
         integral over the window (the distance travelled, in units of the state's norm) is at least
-        ``min_travel``.
+        ``min_travel``, and
+    max_step_travel : no history interval in the window travels more than this (``dt * rate``): the steps
+        resolved the motion. An accurate step moves the state by much less than its norm; a stepper that
+        takes huge steps while reporting a high rate has not resolved any motion, and no verdict is taken.
     bound : a state with ``|u| > bound`` anywhere counts as diverged.
     """
 
@@ -91,11 +94,15 @@ class Tolerances:
     steady_rel: float = 0.05
     moving_rate: float = 1e-4
     min_travel: float = 3.0
+    max_step_travel: float = 0.25
     bound: float = np.inf
 
     def __post_init__(self) -> None:
-        positive = ("uniform_rel", "baseline_rel", "oscillation_rel", "steady_rel", "settled_rate")
-        for name in (*positive, "settled_window"):
+        positive = (
+            "uniform_rel", "baseline_rel", "oscillation_rel", "steady_rel", "settled_rate", "settled_window",
+            "max_step_travel",
+        )
+        for name in positive:
             if not getattr(self, name) > 0:
                 msg = f"`{name}` must be positive, got {getattr(self, name)!r}."
                 raise ValueError(msg)
@@ -392,19 +399,23 @@ def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, to
     steady = bool(np.all(np.ptp(mean, axis=0) <= steady_band))
     steady = steady and bool(np.all(np.ptp(spread, axis=0) <= steady_band))
     patterned = bool(np.all(np.any(spread > uniform_band, axis=1)))
-    travel = float(np.sum(0.5 * (rate[1:] + rate[:-1]) * np.diff(t)))
-    if steady and patterned and rate.min() >= tol.moving_rate and travel >= tol.min_travel:
+    steps = 0.5 * (rate[1:] + rate[:-1]) * np.diff(t)
+    travel = float(steps.sum())
+    resolved = bool(steps.max() <= tol.max_step_travel)
+    if steady and patterned and resolved and rate.min() >= tol.moving_rate and travel >= tol.min_travel:
         return Outcome(
             "dynamic-pattern",
             f"Non-uniform with steady means and ranges while the rate stays >= {rate.min():.3g}: "
             f"a moving pattern (travelled {travel:.3g} norms in the window).",
             features=pattern_features(disc, u),
         )
-    detail = "; ".join(notes) if notes else _still_changing(steady, patterned, rate, travel, tol)
+    detail = "; ".join(notes) if notes else _still_changing(steady, patterned, rate, steps, tol)
     return Outcome("unsettled", f"Not settled (last rate {rate[-1]:.3g}) and no verdict: {detail}.")
 
 
-def _still_changing(steady: bool, patterned: bool, rate: np.ndarray, travel: float, tol: Tolerances) -> str:
+def _still_changing(
+    steady: bool, patterned: bool, rate: np.ndarray, steps: np.ndarray, tol: Tolerances
+) -> str:
     """Why a run with no oscillating signal is not a moving pattern either."""
     if not steady:
         return "the means or ranges drift"
@@ -412,7 +423,9 @@ def _still_changing(steady: bool, patterned: bool, rate: np.ndarray, travel: flo
         return "the state is uniform, or not non-uniform throughout the window"
     if rate.min() < tol.moving_rate:
         return f"the rate drops to {rate.min():.3g}, below the moving threshold {tol.moving_rate:.3g}"
-    return f"it travelled only {travel:.3g} norms in the window, {tol.min_travel:.3g} needed"
+    if steps.max() > tol.max_step_travel:
+        return f"one history step covers {steps.max():.3g} norms, too long to resolve any motion"
+    return f"it travelled only {steps.sum():.3g} norms in the window, {tol.min_travel:.3g} needed"
 
 
 def _window(history: History, fraction: float) -> tuple[np.ndarray, ...]:
@@ -446,8 +459,10 @@ def _periodicity(t: np.ndarray, x: np.ndarray, tol: Tolerances) -> tuple[float |
         y = y - np.polyfit(0.5 * (cuts[:-1] + cuts[1:]), means, 1)[0] * (grid - grid[0])
         cuts = _up_crossings(grid, y)
     cycles = cuts.size - 1
+    if cycles < 1:
+        return None, "drifts without a full cycle in the window"
     if cycles < tol.min_periods:
-        return None, f"varies with {max(cycles, 0)} full cycles in the window ({tol.min_periods:g} needed)"
+        return None, f"varies with {cycles} full cycles in the window ({tol.min_periods:g} needed)"
     lengths = np.diff(cuts)
     period = float((cuts[-1] - cuts[0]) / cycles)
     rows_per_cycle = t.size * period / (t[-1] - t[0])

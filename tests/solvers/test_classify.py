@@ -333,13 +333,14 @@ def test_oscillating_pattern_is_dynamic():
     assert out.features is not None and out.features.regions == 1
 
 
-def test_one_period_is_not_enough():
-    """A sine over about one period gives no verdict: unsettled, not oscillating."""
+@pytest.mark.parametrize("periods", [1.2, 3.0])
+def test_one_period_is_not_enough(periods):
+    """A sine with about one period (or 1.5) in the window gives no verdict: unsettled, not oscillating."""
     disc = interval_fv(L, 20)
-    t = np.linspace(0, 1.2 * 5.0, 400)
+    t = np.linspace(0, periods * 5.0, 400)
     out = classify(disc, np.ones((1, disc.m)), _uniform_oscillation(t, 5.0), BASE[:1], "reached-end")
     assert out.outcome == "unsettled"
-    assert "cycles" in out.reason
+    assert "full cycle" in out.reason
 
 
 def test_coarse_sampling_is_not_enough():
@@ -381,8 +382,20 @@ def test_travelling_pulse_is_dynamic():
     assert out.outcome == "dynamic-pattern", out.reason
     assert out.period is None and out.features.regions == 1 and out.features.location == "interior"
     # the same pattern sitting still with a small rate is no moving pattern
-    still = History(h.t, h.mean, h.lo, h.hi, np.full(t.size, 1e-4))
+    still = History(h.t, h.mean, h.lo, h.hi, np.full(t.size, 1e-5))
     assert classify(disc, state(t[-1])[None, :], still, BASE[:1], "reached-end").outcome == "unsettled"
+
+
+def test_huge_steps_with_high_rate_are_not_motion():
+    """A steady pattern seen through a few long steps that report a high rate is unsettled, not moving."""
+    disc = interval_fv(L, 100)
+    u = 1.0 + 0.5 * np.cos(np.pi * disc.coords[:, 0] / L)[None, :]
+    t = np.concatenate([np.linspace(0, 10, 20), np.linspace(20, 200, 20)])
+    one = np.ones((t.size, 1))
+    h = History(t, one * u.mean(), one * u.min(), one * u.max(), np.full(t.size, 0.05))
+    out = classify(disc, u, h, BASE[:1], "reached-end")
+    assert out.outcome == "unsettled"
+    assert "too long" in out.reason
 
 
 def test_non_finite_and_diverged():
