@@ -242,7 +242,9 @@ def all_roots(
     lower, upper : ``(d,)`` box; distances are measured in units of its width.
     starts : ``(d, m)`` starting points.
     known : ``(k, d)`` roots known beforehand: deflated from the first round and returned first.
-    max_rounds : most rounds; each runs Newton from every start with all roots found so far deflated.
+    max_rounds : most rounds; each runs Newton with all roots found so far deflated, the first from every
+        start, later ones from the first quarter of them (at least 16) and from points between pairs of
+        roots found.
     power, shift : the deflation operator's ``p`` and ``shift`` (Farrell et al. 2015 use 2 and 1).
 
     Returns
@@ -254,8 +256,11 @@ def all_roots(
     width = np.where(upper > lower, upper - lower, 1.0)
     d = lower.size
     roots = np.empty((0, d)) if known is None else np.asarray(known, dtype=float).reshape(-1, d)
-    for _ in range(max_rounds):
-        x, ok = _newton(fun, jac, starts, roots, width, power=power, shift=shift)
+    for k in range(max_rounds):
+        # step: the first round runs every start; later ones (deflated) the first quarter (at least 16)
+        # and points between pairs of roots found, where a saddle between two attractors tends to lie
+        x0 = starts if k == 0 else np.hstack([_between(roots), starts[:, : max(16, starts.shape[1] // 4)]])
+        x, ok = _newton(fun, jac, x0, roots, width, power=power, shift=shift, centre=(lower + upper) / 2)
         new = [xi for xi, oki in zip(x.T, ok) if oki and _inside(xi, lower, upper)]
         fresh = _distinct(new, roots, width)
         if not fresh:
@@ -284,16 +289,19 @@ def _newton(
     max_iter: int = 60,
     xtol: float = 1e-12,
     ftol: float = 1e-8,
+    centre: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Damped Newton from every column of ``x0`` at once, on the residual deflated at ``deflated``.
 
     The deflated step is the plain step ``d0`` scaled by ``1 / (1 - grad(log m) . d0)`` (Sherman-Morrison
     on ``J_H = m J + G grad(m)^T``); a backtracking line search halves it until the deflated residual's
-    norm decreases. Returns the final points and which converged (plain step below ``xtol`` in box
-    widths, residual below ``ftol`` relative to ``|J| |x|``).
+    norm decreases; a point where it never does, or that strays a box width outside the box around
+    ``centre`` (default: the starts' mean), is given up. Returns the final points and which converged
+    (plain step below ``xtol`` in box widths, residual below ``ftol`` relative to ``|J| |x|``).
     """
     x = np.array(x0, dtype=float, copy=True)
     m = x.shape[1]
+    centre = np.mean(x, axis=1) if centre is None else centre
     done = np.zeros(m, dtype=bool)
     alive = np.all(np.isfinite(x), axis=0)
     with np.errstate(all="ignore"):
@@ -325,21 +333,32 @@ def _newton(
                 logm = np.zeros(act.size)
             merit = logm + np.log(np.linalg.norm(g, axis=0) + 1e-300)
             lam = np.ones(act.size)
-            accepted = np.zeros(act.size, dtype=bool)
-            trial = xa + step
+            new = xa + step
+            pending = np.arange(act.size)
             for _ in range(12):
+                trial = xa[:, pending] + lam[pending] * step[:, pending]
                 gt = fun(trial)
                 lt = _log_deflation(trial, deflated, width, power, shift)[0] if deflated.shape[0] else 0.0
                 mt = lt + np.log(np.linalg.norm(gt, axis=0) + 1e-300)
-                ok = np.all(np.isfinite(gt), axis=0) & np.isfinite(mt) & (mt < merit)
-                accepted |= ok
-                if accepted.all():
+                ok = np.all(np.isfinite(gt), axis=0) & np.isfinite(mt) & (mt < merit[pending])
+                new[:, pending] = trial
+                pending = pending[~ok]
+                if pending.size == 0:
                     break
-                lam = np.where(accepted, lam, lam / 2)
-                trial = np.where(accepted, trial, xa + lam * step)
-            x[:, act] = np.where(accepted, trial, xa + lam * step)
-            alive[act] &= np.all(np.isfinite(x[:, act]), axis=0)
+                lam[pending] /= 2
+            x[:, act] = new
+            stuck = np.zeros(act.size, dtype=bool)
+            stuck[pending] = True  # no decrease along the step: stagnation, give up
+            far = np.any(np.abs(new - centre[:, None]) > 1.5 * width[:, None], axis=0)  # a box width outside
+            alive[act] &= np.all(np.isfinite(new), axis=0) & ~stuck & ~far
     return x, done
+
+
+def _between(roots: np.ndarray) -> np.ndarray:
+    """Points a quarter, half and three quarters of the way between every pair of roots, ``(d, m)``."""
+    pairs = [(a, b) for i, a in enumerate(roots) for b in roots[i + 1:]]
+    pts = [a + t * (b - a) for a, b in pairs for t in (0.25, 0.5, 0.75)]
+    return np.array(pts).T if pts else np.empty((roots.shape[1], 0))
 
 
 def _solve(jm: np.ndarray, rhs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -421,9 +421,11 @@ def _boundary(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray) -> flo
     return best
 
 
-def _ray(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray, rtol: float, ode: bool, hint: bool) -> _Ray:
+def _ray(
+    loc: _Local, states: tuple[LocalState, ...], d: np.ndarray, rtol: float, ode: bool, hint: bool, xtol: float
+) -> _Ray:
     """Thresholds along ``d``: route 1, and route 2 if ``ode`` (for one slow species only where route 1
-    finds a boundary, since the flow is then monotone between roots)."""
+    finds a boundary, since the flow is then monotone between roots), bisected to ``xtol`` relative."""
     hmax = _max_height(loc, d)
     boundary = _boundary(loc, states, d)
     scalar = loc.ns == 1
@@ -434,30 +436,32 @@ def _ray(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray, rtol: float
     others = [st.values for st in states if not st.stable]
     home = next(k for k, st in enumerate(s for s in states if s.stable) if st.is_hss)
 
-    def fate(h: float) -> _Fate:
-        return _fate(loc, loc.s_star + h * d, attractors, others, rtol)
+    def fate(h: float, tol: float = rtol) -> _Fate:
+        return _fate(loc, loc.s_star + h * d, attractors, others, tol)
 
     def left(f: _Fate) -> bool:
         return not (f.kind == "reached" and f.index == home)
 
-    # step: route 1's hint, checked by two runs that must straddle the boundary
-    if hint and scalar and boundary < hmax:
+    # step: route 1's hint, checked by two runs that must straddle the boundary (and, for several slow
+    # species, by runs at a half, a quarter and an eighth of it that must return)
+    if hint and boundary is not None and boundary < hmax:
         lo, hi = boundary * (1 - 1e-8), boundary * (1 + 1e-8)
         f_hi = fate(hi)
         if left(f_hi) and not left(fate(lo)):
-            return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
-    # step: coarse scan of heights, then bisection on the first that does not return
-    heights = hmax * 4.0 ** -np.arange(10, -1, -1)
-    fates = [fate(h) for h in heights]
+            if scalar:
+                return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
+            if not any(left(fate(boundary * 0.5**k)) for k in (1, 2, 3)):
+                unbounded = _unbounded_beyond(fate, [(hmax, fate(hmax))], hi, f_hi)
+                return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
+    # step: coarse scan of heights (looser tolerance: no start is near a boundary but by chance), then
+    # bisection on the first that does not return
+    heights = hmax * 4.0 ** -np.arange(8, -1, -1)
+    fates = [fate(h, max(rtol, 1e-8)) for h in heights]
     first = next((i for i, f in enumerate(fates) if left(f)), None)
     if first is None:
         return _Ray(boundary=boundary, unbounded=unbounded)
     lo, hi, f_hi = (0.0 if first == 0 else float(heights[first - 1])), float(heights[first]), fates[first]
-    if hint and boundary is not None and lo < boundary * (1 - 1e-8) and boundary * (1 + 1e-8) < hi:
-        f_b = fate(boundary * (1 + 1e-8))
-        if left(f_b) and not left(fate(boundary * (1 - 1e-8))):
-            lo, hi, f_hi = boundary * (1 - 1e-8), boundary * (1 + 1e-8), f_b
-    while hi - lo > 1e-9 * hi:
+    while hi - lo > xtol * hi:
         mid = 0.5 * (lo + hi)
         f_mid = fate(mid)
         if left(f_mid):
@@ -465,7 +469,7 @@ def _ray(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray, rtol: float
         else:
             lo = mid
     if not scalar:
-        unbounded = _scan_unbounded(fate, heights, fates, first, hi, f_hi)
+        unbounded = _unbounded_beyond(fate, list(zip(heights[first:], fates[first:])), hi, f_hi)
     return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
 
 
@@ -484,21 +488,25 @@ def _scalar_unbounded(loc: _Local, states: tuple[LocalState, ...], d: np.ndarray
     return max(beyond, default=0.0)
 
 
-def _scan_unbounded(fate, heights, fates, first: int, hi: float, f_hi: _Fate) -> float | None:
-    """Several slow species: least scanned height beyond the threshold that escapes, refined by bisection."""
+def _unbounded_beyond(fate, tried: list[tuple[float, _Fate]], hi: float, f_hi: _Fate) -> float | None:
+    """Several slow species: least height beyond the threshold ``hi`` whose run escapes, from the runs
+    ``tried`` (heights above ``hi``, ascending) refined by bisection to 1e-6 relative; None if none does."""
     if f_hi.kind == "escaped":
         return hi
-    esc = next((i for i in range(first, len(fates)) if fates[i].kind == "escaped"), None)
-    if esc is None:
-        return None
-    lo, top = (hi if esc == first else float(heights[esc - 1])), float(heights[esc])
-    while top - lo > 1e-6 * top:
-        mid = 0.5 * (lo + top)
-        if fate(mid).kind == "escaped":
-            top = mid
-        else:
-            lo = mid
-    return top
+    lo = hi
+    for h, f in tried:
+        if f.kind != "escaped":
+            lo = max(lo, float(h))
+            continue
+        top = float(h)
+        while top - lo > 1e-6 * top:
+            mid = 0.5 * (lo + top)
+            if fate(mid).kind == "escaped":
+                top = mid
+            else:
+                lo = mid
+        return top
+    return None
 
 
 def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hint: bool) -> dict:
@@ -506,7 +514,8 @@ def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hi
     if not e.any():
         return {"regime": "no-pattern",
                 "reason": "spike-stable HSS and no pulse species is slow (a fast pulse has no effect here)"}
-    rays = {s: _ray(loc, states, s * e, rtol, ode=(s == sign or loc.ns > 1), hint=hint) for s in (1, -1)}
+    rays = {s: _ray(loc, states, s * e, rtol, ode=(s == sign or loc.ns > 1), hint=hint,
+                    xtol=1e-9 if s == sign else 1e-6) for s in (1, -1)}
     ray = rays[sign]
     out = {"threshold_up": rays[1].threshold, "threshold_down": rays[-1].threshold,
            "threshold": ray.threshold, "threshold_boundary": ray.boundary, "threshold_ode": ray.ode,
