@@ -69,10 +69,13 @@ def default_box(guess: np.ndarray, *, factor: float = 10.0) -> tuple[np.ndarray,
     """Region of interest ``[0, factor * max(|guess_i|, 1)]`` for each species.
 
     Concentrations are nonnegative, so the lower corner is 0; the upper corner leaves a decade of room
-    above the guess (and at least ``factor`` for species guessed near zero).
+    above the guess (and at least ``factor`` for species guessed near zero). A species guessed negative
+    (a shifted variable, not a concentration) gets the mirror image ``[-factor * |guess_i|, 0]``.
     """
     guess = np.asarray(guess, dtype=float)
-    return np.zeros_like(guess), factor * np.maximum(np.abs(guess), 1.0)
+    reach = factor * np.maximum(np.abs(guess), 1.0)
+    neg = guess < 0
+    return np.where(neg, -reach, 0.0), np.where(neg, 0.0, reach)
 
 
 def equilibrium(kin: Kinetics, state: np.ndarray, totals: np.ndarray | None = None) -> Equilibrium:
@@ -319,6 +322,7 @@ def _newton(
             xnorm = np.max(np.abs(xa), axis=0)
             conv = good & (scaled <= xtol) & (np.max(np.abs(g), axis=0) <= ftol * (1 + jnorm * (1 + xnorm)))
             done[act[conv]] = True
+            x[:, act[conv]] += step[:, conv]  # the last (tiny) step is free accuracy
             alive[act[~good]] = False
             move = good & ~conv
             if not move.any():
