@@ -40,9 +40,11 @@ __all__ = [
 _K_PAD = 3.0 * math.log(10.0)
 _PER_DECADE = 8
 _MIN_POINTS = 48
+_FINE_POINTS = 15
 _COARSE_POINTS = 32
 _ZOOM_POINTS = 17
 _ZOOM_LEVELS = 3
+_PEAKS = 3
 # Ratio search: rho = max(D_slow) / min(D_fast) from 1 down to 1e-12, a decade per coarse step.
 _RHO_MIN = 1e-12
 _RHO_STEPS_PER_DECADE = 1
@@ -301,39 +303,75 @@ def _scan_grid(lo: float, hi: float) -> np.ndarray:
     return np.linspace(lo, hi, num)
 
 
+def _eigvals_k(jac: np.ndarray, diffusion: np.ndarray, x: np.ndarray) -> np.ndarray:
+    n = jac.shape[0]
+    mats = np.empty((x.size, n, n))
+    mats[...] = jac
+    idx = np.arange(n)
+    mats[:, idx, idx] -= np.exp(2.0 * x)[:, None] * diffusion
+    return np.linalg.eigvals(mats)
+
+
 def _scan(jac: np.ndarray, diffusion: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Growth on the log-spaced scan, densified between points where two eigenvalues collide.
+
+    Where a complex pair splits into two real eigenvalues one of them rises like a square root, and the
+    growth can peak on a scale finer than the scan: between scan points whose number of real eigenvalues
+    differs, ``_FINE_POINTS`` more points are added.
+    """
     x = _scan_grid(*_log_k_range(jac, diffusion))
-    return x, _line_growth(jac, diffusion, x)
+    eig = _eigvals_k(jac, diffusion, x)
+    y = eig.real.max(axis=-1)
+    n_real = np.sum(eig.imag == 0, axis=-1)
+    changes = np.flatnonzero(np.diff(n_real))
+    if changes.size == 0:
+        return x, y
+    fill = np.linspace(0.0, 1.0, _FINE_POINTS + 2)[1:-1]
+    extra = (x[changes, None] + (x[changes + 1] - x[changes])[:, None] * fill).ravel()
+    x, y = np.concatenate([x, extra]), np.concatenate([y, _line_growth(jac, diffusion, extra)])
+    order = np.argsort(x)
+    return x[order], y[order]
 
 
 def _peak(fun: Callable[[np.ndarray], np.ndarray], x: np.ndarray, y: np.ndarray) -> tuple[float, float, int]:
-    """Refine the scan maximum ``(x[i], y[i])`` by successive zooms on ``[x[i-1], x[i+1]]`` and a parabola.
+    """Refine the scan's maximum: zoom on ``[x[i-1], x[i+1]]`` around its best local maxima, then a parabola.
 
-    Returns ``(x_peak, y_peak, i)``; a maximum at either end of the scan is returned as is.
+    The ``_PEAKS`` highest interior local maxima are refined together (one batched call a level), since a
+    narrow peak can hide below a neighbour's scan value. Returns ``(x_peak, y_peak, i)`` with ``i`` the
+    winner's scan index; an end of the scan wins (as is) when no refined peak exceeds it.
     """
-    i = int(np.argmax(y))
-    if i == 0 or i == x.size - 1:
-        return float(x[i]), float(y[i]), i
-    lo, hi = x[i - 1], x[i + 1]
-    best_x, best_y = float(x[i]), float(y[i])
+    edge = 0 if y[0] >= y[-1] else x.size - 1
+    inner = np.flatnonzero((y[1:-1] >= y[:-2]) & (y[1:-1] >= y[2:])) + 1
+    if inner.size == 0:
+        return float(x[edge]), float(y[edge]), edge
+    cand = inner[np.argsort(-y[inner], kind="stable")[:_PEAKS]]
+    rows = np.arange(cand.size)
+    lo, hi = x[cand - 1], x[cand + 1]
+    best_x, best_y = x[cand].astype(float), y[cand].astype(float)
+    fill = np.linspace(0.0, 1.0, _ZOOM_POINTS)
     for _ in range(_ZOOM_LEVELS):
-        xs = np.linspace(lo, hi, _ZOOM_POINTS)
+        xs = lo[:, None] + (hi - lo)[:, None] * fill
         ys = fun(xs)
-        top = int(np.argmax(ys))
-        if ys[top] >= best_y:
-            best_x, best_y = float(xs[top]), float(ys[top])
-        j = min(max(top, 1), _ZOOM_POINTS - 2)
-        lo, hi = xs[j - 1], xs[j + 1]
-    # step: parabola through the last three points around the maximum
-    y0, y1, y2 = ys[j - 1 : j + 2]
+        top = ys.argmax(axis=1)
+        better = ys[rows, top] >= best_y
+        best_x = np.where(better, xs[rows, top], best_x)
+        best_y = np.where(better, ys[rows, top], best_y)
+        j = np.clip(top, 1, _ZOOM_POINTS - 2)
+        lo, hi = xs[rows, j - 1], xs[rows, j + 1]
+    # step: vertex of the parabola through the last three points around each maximum
+    y0, y1, y2 = ys[rows, j - 1], ys[rows, j], ys[rows, j + 1]
     curvature = y0 - 2.0 * y1 + y2
-    if curvature < 0:
-        xv = xs[j] + 0.5 * (xs[j + 1] - xs[j]) * (y0 - y2) / curvature
-        if lo <= xv <= hi:
-            yv = float(fun(np.array([xv]))[0])
-            if yv > best_y:
-                best_x, best_y = float(xv), yv
-    return best_x, best_y, i
+    concave = curvature < 0
+    xv = xs[rows, j] + 0.5 * (xs[rows, j + 1] - xs[rows, j]) * (y0 - y2) / np.where(concave, curvature, -1.0)
+    use = np.flatnonzero(concave & (xv >= lo) & (xv <= hi))
+    if use.size:
+        yv = fun(xv[use])
+        better = yv > best_y[use]
+        best_x[use[better]], best_y[use[better]] = xv[use[better]], yv[better]
+    c = int(np.argmax(best_y))
+    if y[edge] >= best_y[c]:
+        return float(x[edge]), float(y[edge]), edge
+    return float(best_x[c]), float(best_y[c]), int(cand[c])
 
 
 def _conserved_rows(conservation: np.ndarray | None, n: int) -> np.ndarray:
@@ -420,7 +458,7 @@ def _analyse_line(jac: np.ndarray, diffusion: np.ndarray, conserved: bool, wm_gr
         else:
             lo = _root(partial(_growth_at_k, jac, diffusion, wm_growth), 0.0, math.exp(x[0]))
         hi = math.inf if b == x.size - 1 else math.exp(_root(scalar, x[b], x[b + 1]))
-        bands.append((lo, hi))
+        bands.append((float(lo), float(hi)))
     return _Line(tuple(bands), fastest_k, fastest_growth)
 
 
@@ -429,11 +467,9 @@ def _line_sup(jac: np.ndarray, diffusion: np.ndarray, lw_rate: float) -> tuple[f
 
     The supremum is a continuous function of the coefficients, for root finding.
     """
-    lo, hi = _log_k_range(jac, diffusion)
-    fun = partial(_line_growth, jac, diffusion)
-    x = _scan_grid(lo, hi)
-    xp, yp, i = _peak(fun, x, fun(x))
-    return max(yp, math.exp(2.0 * lo) * lw_rate), xp, 0 < i < x.size - 1
+    x, y = _scan(jac, diffusion)
+    xp, yp, i = _peak(partial(_line_growth, jac, diffusion), x, y)
+    return max(yp, math.exp(2.0 * x[0]) * lw_rate), xp, 0 < i < x.size - 1
 
 
 # ---------------------------------------------------------------------------------------------------------
@@ -679,7 +715,9 @@ class LinearVerdict:
     turing_unstable : ``well_mixed_stable and domain_unstable``: a diffusion-driven instability that the case's
         own domain admits. This is the flag to compare with a noise start of the full PDE.
     mode_label, mode_k, mode_wavelength, mode_growth : the fastest (or least stable) admissible mode with
-        ``k > 0`` and its growth; label None and ``k = inf`` when the supremum lies at ``k -> inf``.
+        ``k > 0`` and its growth; label None and ``k = inf`` when the supremum lies at ``k -> inf``. When the
+        domain would need more than 200 000 modes up to the band's top it is treated as the unbounded line
+        (label None, the line's fastest ``k`` and growth).
     ratio : the case's own ``max(D_slow) / min(D_fast)`` (None without slow or diffusing fast species).
     critical_ratio_line, critical_ratio_domain : see `critical_ratio`.
     """
@@ -720,8 +758,8 @@ def _fastest_mode(
     finite = [e for band in line.bands for e in band if math.isfinite(e)] + [line.fastest_k]
     k_cap = max(1.5 * max(finite), 1.0001 * spec.first_k(size))
     if spec.count(size, k_cap) > _MAX_MODES:
-        msg = f"the {shape} of size {size} needs more than {_MAX_MODES} modes up to k = {k_cap:.3g}."
-        raise ValueError(msg)
+        # step: the modes are dense on the scale of the band; the domain behaves as the unbounded line
+        return line.fastest_growth > 0 or top_infinite, None, line.fastest_k, line.fastest_growth
     modes = admissible_modes(shape, size, k_cap**2)
     rates = _leading(jac, modes.k2[1:, None] * diffusion)
     j = int(np.argmax(rates))
@@ -756,20 +794,20 @@ def linear_analysis(kin: Kinetics, hss: np.ndarray, shape: str, size: float | tu
     # step: critical ratios
     rho_line, rho_domain = _critical_ratios(jac, diffusion, slow, rows, wm_stable, shape, sizes)
     return LinearVerdict(
-        well_mixed_stable=wm_stable,
-        well_mixed_growth=wm_growth,
-        line_turing_unstable=wm_stable and line_unstable,
+        well_mixed_stable=bool(wm_stable),
+        well_mixed_growth=float(wm_growth),
+        line_turing_unstable=bool(wm_stable and line_unstable),
         band=band,
         bands=line.bands,
-        fastest_k=line.fastest_k,
+        fastest_k=float(line.fastest_k),
         fastest_wavelength=_wavelength(line.fastest_k),
-        fastest_growth=line.fastest_growth,
-        domain_unstable=domain_unstable,
-        turing_unstable=wm_stable and domain_unstable,
+        fastest_growth=float(line.fastest_growth),
+        domain_unstable=bool(domain_unstable),
+        turing_unstable=bool(wm_stable and domain_unstable),
         mode_label=label,
-        mode_k=mode_k,
+        mode_k=float(mode_k),
         mode_wavelength=_wavelength(mode_k),
-        mode_growth=mode_growth,
+        mode_growth=float(mode_growth),
         ratio=_own_ratio(diffusion, slow),
         critical_ratio_line=rho_line,
         critical_ratio_domain=rho_domain,
