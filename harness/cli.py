@@ -1,0 +1,102 @@
+"""The `rdcheck` command line: a thin argparse layer over functions that are also callable from Python."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from collections.abc import Callable, Sequence
+
+from .errors import InputError
+
+__all__ = ["main"]
+
+COMMANDS: dict[str, Callable[[argparse.Namespace], int]] = {}
+
+
+def command(name: str) -> Callable:
+    """Register a sub-command handler under ``name``."""
+
+    def register(fun: Callable[[argparse.Namespace], int]) -> Callable[[argparse.Namespace], int]:
+        COMMANDS[name] = fun
+        return fun
+
+    return register
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose usage errors are one line and exit status 2."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        sys.stderr.write(f"{self.prog}: error: {message}\n")
+        raise SystemExit(2)
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="rdcheck", description="Check spike-limit and linear predictions of a "
+                     "reaction-diffusion model against the full PDE.")
+    sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    p = sub.add_parser("predict", help="spike-limit (LPA) regimes and thresholds, and linear analysis")
+    _case_args(p)
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+    p.add_argument("--plot", metavar="FILE", help="draw states against the sweep parameter (PNG or PDF)")
+    return parser
+
+
+def _case_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("case", help="case file (TOML)")
+    p.add_argument("--set", dest="overrides", action="append", default=[], metavar="NAME=VALUE",
+                   help="override a parameter (NAME=VALUE) or any case key (SECTION.KEY=VALUE)")
+
+
+def _load(args: argparse.Namespace):
+    from .case import load_case
+    from .model import build_model
+
+    case = load_case(args.case, args.overrides)
+    return case, build_model(case)
+
+
+@command("predict")
+def _predict(args: argparse.Namespace) -> int:
+    from .predict import predict_case, prediction_json, prediction_table
+
+    case, model = _load(args)
+    points = predict_case(case, model)
+    if args.plot:
+        from .figures import plot_prediction
+
+        plot_prediction(case, model, points, args.plot)
+    if args.json:
+        json.dump(prediction_json(case, model, points), sys.stdout, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(prediction_table(case, model, points))
+    return 0
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    """Warnings reach the user as one line on stderr, without a source location."""
+    sys.stderr.write(f"rdcheck: warning: {message}\n")
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit status (0 ok, 1 a check failed, 2 bad input)."""
+    import warnings
+
+    args = _parser().parse_args(argv)
+    with warnings.catch_warnings():
+        warnings.simplefilter("default")
+        warnings.showwarning = _show_warning
+        try:
+            return COMMANDS[args.command](args)
+        except InputError as exc:
+            sys.stderr.write(f"rdcheck: error: {exc}\n")
+            return 2
+        except BrokenPipeError:
+            return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

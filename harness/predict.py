@@ -1,0 +1,151 @@
+"""`rdcheck predict`: spike-limit and linear predictions at every sweep point, as data, JSON and a table."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from .case import Case
+from .equilibria import trace_baseline
+from .linear import LinearVerdict, linear_analysis
+from .model import Model
+from .spike import SpikePrediction, spike_analysis
+
+__all__ = ["PointPrediction", "predict_case", "prediction_json", "prediction_table", "pulse_setup"]
+
+
+@dataclass(frozen=True)
+class PointPrediction:
+    """Both predictions at one sweep point."""
+
+    params: dict[str, float]
+    value: float
+    hss: np.ndarray | None
+    spike: SpikePrediction
+    linear: LinearVerdict | None
+    lost_reason: str | None = None
+
+    @property
+    def regime(self) -> str:
+        """The spike-limit regime (DESIGN.md names)."""
+        return self.spike.regime
+
+    @property
+    def threshold(self) -> float | None:
+        """The predicted pulse height in the case's pulse direction, or None."""
+        return self.spike.threshold
+
+
+def pulse_setup(case: Case, model: Model) -> tuple[tuple[str, ...], int]:
+    """Pulse species and sign: from `starts.pulse` (sign of its height), else every slow species, upward."""
+    if case.pulse is None:
+        return tuple(s for s, slow in zip(model.species, model.slow) if slow), 1
+    sign = -1 if case.pulse.height is not None and case.pulse.height < 0 else 1
+    return case.pulse.species, sign
+
+
+def predict_case(case: Case, model: Model) -> list[PointPrediction]:
+    """Follow the baseline HSS along the sweep and analyse it at every point."""
+    points = case.points()
+    kinetics = [model.kinetics(p, case.sweep.parameter) for p in points]
+    guess = np.array([case.guess[s] for s in model.species])
+    trace = trace_baseline(kinetics, guess, case.sweep.values)
+    species, sign = pulse_setup(case, model)
+    out = []
+    for params, kin, eq, reason in zip(points, kinetics, trace.states, trace.reasons):
+        spike = spike_analysis(kin, eq, species, sign)
+        linear = linear_analysis(kin, eq.state, case.domain.shape, case.domain.size) if eq is not None else None
+        out.append(PointPrediction(params=params, value=params[case.sweep.parameter],
+                                   hss=None if eq is None else eq.state, spike=spike, linear=linear,
+                                   lost_reason=reason))
+    return out
+
+
+def _num(x: float | None) -> float | None:
+    """A JSON-safe number: non-finite values become None."""
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _point_json(model: Model, p: PointPrediction) -> dict:
+    s, lin = p.spike, p.linear
+    slow = [name for name, is_slow in zip(model.species, model.slow) if is_slow]
+    return {
+        "params": dict(p.params),
+        "regime": p.regime,
+        "reason": s.reason,
+        "threshold": _num(s.threshold),
+        "threshold_up": _num(s.threshold_up),
+        "threshold_down": _num(s.threshold_down),
+        "threshold_boundary": _num(s.threshold_boundary),
+        "threshold_ode": _num(s.threshold_ode),
+        "unbounded_above": _num(s.unbounded_above),
+        "hss": None if p.hss is None else {k: float(v) for k, v in zip(model.species, p.hss)},
+        "well_mixed_stable": s.well_mixed_stable,
+        "spike_stable": s.spike_stable,
+        "local_states": [{"values": {k: float(v) for k, v in zip(slow, ls.values)}, "stable": bool(ls.stable)}
+                         for ls in s.local_states],
+        "turing_unstable": bool(lin.turing_unstable) if lin else False,
+        "line_turing_unstable": bool(lin.line_turing_unstable) if lin else False,
+        "fastest_wavelength": _num(lin.fastest_wavelength) if lin else None,
+        "domain_mode_wavelength": _num(lin.mode_wavelength) if lin else None,
+        "diffusion_ratio": _num(lin.ratio) if lin else None,
+        "critical_ratio_line": _num(lin.critical_ratio_line) if lin else None,
+        "critical_ratio_domain": _num(lin.critical_ratio_domain) if lin else None,
+        "baseline_lost": p.lost_reason,
+    }
+
+
+def prediction_json(case: Case, model: Model, points: Sequence[PointPrediction]) -> dict:
+    """The `predict --json` object of DESIGN.md (`points` with `params`, `regime`, `threshold`, `hss`, ...)."""
+    return {
+        "case": case.path,
+        "model": model.name,
+        "sweep_parameter": case.sweep.parameter,
+        "species": list(model.species),
+        "slow": [bool(x) for x in model.slow],
+        "split": model.split_reason,
+        "conservation": [[str(c) for c in row] for row in model.conservation_exact],
+        "totals": [float(t) for t in model.totals(case.guess)],
+        "domain": {"shape": case.domain.shape, "size": list(case.domain.size)},
+        "points": [_point_json(model, p) for p in points],
+    }
+
+
+def _fmt(x: float | None, digits: int = 4) -> str:
+    if x is None or not math.isfinite(x):
+        return "-"
+    return f"{x:.{digits}g}"
+
+
+def prediction_table(case: Case, model: Model, points: Sequence[PointPrediction]) -> str:
+    """A plain-text table, one row per sweep point."""
+    slow = ", ".join(s for s, flag in zip(model.species, model.slow) if flag)
+    head = [f"{model.name}: sweep over {case.sweep.parameter}; slow: {slow} ({model.split_reason})"]
+    if len(model.conservation_exact):
+        laws = "; ".join(" + ".join(f"{c}*{s}" for c, s in zip(row, model.species) if c != 0)
+                         for row in model.conservation_exact)
+        head.append(f"conserved: {laws}")
+    cols = [case.sweep.parameter, *model.species, "regime", "threshold", "well-mixed", "linear", "wavelength"]
+    rows = []
+    for p in points:
+        hss = [_fmt(v) for v in p.hss] if p.hss is not None else ["-"] * model.n
+        lin = p.linear
+        verdict = "-" if lin is None else ("turing" if lin.turing_unstable else
+                                          "unstable" if not lin.well_mixed_stable else "stable")
+        wavelength = _fmt(lin.mode_wavelength) if lin is not None and lin.turing_unstable else "-"
+        wm = "-" if p.spike.well_mixed_stable is None else ("stable" if p.spike.well_mixed_stable else "unstable")
+        threshold = _fmt(p.threshold)
+        if p.spike.unbounded_above is not None and p.threshold is None:
+            threshold = f"grows>{_fmt(p.spike.unbounded_above, 3)}"
+        rows.append([_fmt(p.value), *hss, p.regime, threshold, wm, verdict, wavelength])
+    widths = [max(len(c), *(len(r[i]) for r in rows)) for i, c in enumerate(cols)]
+    lines = [*head, "  ".join(c.ljust(w) for c, w in zip(cols, widths)),
+             "  ".join("-" * w for w in widths)]
+    lines += ["  ".join(v.ljust(w) for v, w in zip(r, widths)) for r in rows]
+    return "\n".join(lines) + "\n"
