@@ -305,27 +305,37 @@ class _Fate:
 
 
 def _fate(
-    loc: _Local, s0: np.ndarray, attractors: list[np.ndarray], others: list[np.ndarray], rtol: float
+    loc: _Local,
+    s0: np.ndarray,
+    attractors: list[np.ndarray],
+    others: list[np.ndarray],
+    rtol: float,
+    radii: np.ndarray | None = None,
 ) -> _Fate:
     """Run the local ODE from ``s0`` until it nears a stable local state, leaves the box or oscillates.
 
     "Near" is a ball around each of the ``attractors`` smaller than a quarter of its distance to any other
     local state (``others`` are the unstable ones) and than half its distance to ``s0``. LSODA with the
-    analytic Jacobian; the run goes in chunks of growing length (from ``50 / rate``, ``rate`` the fastest
-    local eigenvalue) and stops at the first such event; the maxima of each species are located exactly
-    (events) for the cycle test of :func:`_is_cycle`.
+    analytic Jacobian; the run goes in eight chunks growing by half each (from ``20 / rate``, ``rate`` the
+    slowest local eigenvalue's modulus) and stops at the first such event; the maxima of each species are
+    located exactly (events) for the cycle test of :func:`_is_cycle`. ``radii`` overrides the balls' radii
+    (for a run that continues another).
     """
     width = loc.width
     lo_out, hi_out = loc.lo - 1e-6 * width, loc.hi + 1e-6 * width
     if np.any(s0 < lo_out) or np.any(s0 > hi_out):
         return _Fate("escaped")
     pts = np.array(attractors).reshape(-1, loc.ns)
+    start = np.max(np.abs(pts - s0) / width, axis=1) if len(pts) else np.array([np.inf])
+    if np.min(start) <= 1e-9:  # a start at round-off distance from an attractor is there already
+        return _Fate("reached", int(np.argmin(start)))
     every = np.vstack([pts, np.array(others).reshape(-1, loc.ns)])
     sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1:]]
     radius = min([1e-3, *(0.25 * x for x in sep)])
 
     def near(k: int):
         rk = min(radius, 0.5 * float(np.sqrt(np.sum(((s0 - pts[k]) / width) ** 2))))
+        rk = rk if radii is None else float(radii[k])
 
         def event(t, y):
             return float(np.sum(((y - pts[k]) / width) ** 2) - rk**2)
@@ -364,12 +374,19 @@ def _fate(
     def jac(t, y):
         return loc.jac(y[:, None])[:, :, 0]
 
-    rate = max(float(np.max(np.abs(np.linalg.eigvals(jac(0.0, s))))) for s in [loc.s_star, *pts])
-    span, t0, y = 50.0 / max(rate, 1e-12), 0.0, np.array(s0, dtype=float)
+    mags = np.abs(np.concatenate([np.linalg.eigvals(jac(0.0, s)) for s in [loc.s_star, *pts]]))
+    rate = max(float(np.min(mags)), 1e-6 * float(np.max(mags)), 1e-12)
+    span, t0, y = 20.0 / rate, 0.0, np.array(s0, dtype=float)
     atol = 1e-2 * rtol * width
     with np.errstate(all="ignore"):
-        for _ in range(16):
-            sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=events, rtol=rtol, atol=atol)
+        for _ in range(8):
+            try:
+                sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=events, rtol=rtol,
+                                atol=atol)
+            except ValueError:  # a peak event at round-off level near rest confused the event root search
+                sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=stops, rtol=rtol,
+                                atol=atol)
+                sol.y_events = [*sol.y_events, *([np.empty((0, loc.ns))] * loc.ns)]
             if sol.status == 1:
                 k = next(k for k, te in enumerate(sol.t_events[: len(stops)]) if te.size)
                 return _Fate("escaped") if k == len(pts) else _Fate("reached", k)
@@ -383,6 +400,77 @@ def _fate(
                     return _Fate("oscillates")
             t0, y, span = sol.t[-1], sol.y[:, -1], 1.5 * span
     return _Fate("unsettled")
+
+
+def _fates(
+    loc: _Local, starts: np.ndarray, attractors: list[np.ndarray], others: list[np.ndarray], rtol: float
+) -> list[_Fate]:
+    """:func:`_fate` for many starts ``(k, ns)`` at once: one ODE system of all of them (the kinetics are
+    vectorised, so a step costs about as much as for one), checked for arrivals at the ends of four
+    growing chunks and stopped by an event whenever one leaves the box; those still undecided then
+    (cycles, slow ones) go on alone in :func:`_fate`."""
+    width = loc.width
+    lo_out, hi_out = loc.lo - 1e-6 * width, loc.hi + 1e-6 * width
+    pts = np.array(attractors).reshape(-1, loc.ns)
+    every = np.vstack([pts, np.array(others).reshape(-1, loc.ns)])
+    sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1:]]
+    radius = min([1e-3, *(0.25 * x for x in sep)])
+    dist = np.sqrt(np.sum(((starts[:, None, :] - pts[None, :, :]) / width) ** 2, axis=2))  # (k, attractors)
+    radii = np.minimum(radius, 0.5 * dist)
+    out: list[_Fate | None] = [None] * len(starts)
+    for k, s0 in enumerate(starts):
+        if np.any(s0 < lo_out) or np.any(s0 > hi_out):
+            out[k] = _Fate("escaped")
+        elif len(pts) and np.min(np.max(np.abs(pts - s0) / width, axis=1)) <= 1e-9:
+            out[k] = _Fate("reached", int(np.argmin(np.max(np.abs(pts - s0) / width, axis=1))))
+    live = [k for k in range(len(starts)) if out[k] is None]
+    mags = np.abs(np.concatenate([np.linalg.eigvals(loc.jac(s[:, None])[:, :, 0]) for s in [loc.s_star, *pts]]))
+    span, t0 = 20.0 / max(float(np.min(mags)), 1e-6 * float(np.max(mags)), 1e-12), 0.0
+    y = starts[live].T.copy()
+    with np.errstate(all="ignore"):
+        for _ in range(4):
+            if not live:
+                break
+            m = len(live)
+            rows = (np.arange(loc.ns)[:, None, None] * m + np.arange(m)).repeat(loc.ns, axis=1)
+            cols = (np.arange(loc.ns)[None, :, None] * m + np.arange(m)).repeat(loc.ns, axis=0)
+
+            def rhs(t, z, m=m):
+                return loc.fun(z.reshape(loc.ns, m)).ravel()
+
+            def jac(t, z, m=m, rows=rows, cols=cols):
+                big = np.zeros((loc.ns * m, loc.ns * m))
+                big[rows, cols] = loc.jac(z.reshape(loc.ns, m))
+                return big
+
+            def leave(t, z, m=m):
+                q = z.reshape(loc.ns, m)
+                return float(min(np.min((q - lo_out[:, None]) / width[:, None]),
+                                 np.min((hi_out[:, None] - q) / width[:, None])))
+
+            leave.terminal, leave.direction = True, -1
+            sol = solve_ivp(rhs, (t0, t0 + span), y.ravel(), method="LSODA", jac=jac, events=[leave],
+                            rtol=rtol, atol=np.repeat(1e-2 * rtol * width, m))
+            q = sol.y[:, -1].reshape(loc.ns, m)
+            gone = ~np.all(np.isfinite(q), axis=0) | np.any(q < lo_out[:, None] + 1e-9 * width[:, None], axis=0)
+            gone |= np.any(q > hi_out[:, None] - 1e-9 * width[:, None], axis=0) | (sol.status < 0)
+            keep = []
+            for j, k in enumerate(live):
+                d = np.sqrt(np.sum(((q[:, j] - pts) / width) ** 2, axis=1)) if len(pts) else np.array([])
+                hit = np.flatnonzero(d <= radii[k])
+                if gone[j]:
+                    out[k] = _Fate("escaped")
+                elif hit.size:
+                    out[k] = _Fate("reached", int(hit[0]))
+                else:
+                    keep.append(j)
+            live = [live[j] for j in keep]
+            y = q[:, keep]
+            t0 = sol.t[-1]
+            span = span if sol.status == 1 else 1.5 * span
+    for j, k in enumerate(live):
+        out[k] = _fate(loc, y[:, j], attractors, others, rtol, radii[k])
+    return out
 
 
 def _is_cycle(peaks: np.ndarray, spread: float, rtol: float) -> bool:
@@ -454,7 +542,7 @@ def _ray(
     boundary = _boundary(loc, states, d)
     scalar = loc.ns == 1
     unbounded = _scalar_unbounded(loc, states, d, hmax) if scalar else None
-    if hmax <= 0 or not ode or (scalar and boundary is None):
+    if hmax * np.max(np.abs(d) / loc.width) <= 1e-9 or not ode or (scalar and boundary is None):
         return _Ray(boundary=boundary, unbounded=unbounded)
     attractors = [st.values for st in states if st.stable]
     others = [st.values for st in states if not st.stable]
@@ -467,31 +555,34 @@ def _ray(
         return not (f.kind == "reached" and f.index == home)
 
     # step: route 1's hint, checked by two runs that must straddle the boundary (and, for several slow
-    # species, by runs at a half, a quarter and an eighth of it that must return)
+    # species, by runs at a half, a quarter and an eighth of it that must return), all at once
     if hint and boundary is not None and boundary < hmax:
         lo, hi = boundary * (1 - 1e-8), boundary * (1 + 1e-8)
-        f_hi = fate(hi)
-        if left(f_hi) and not left(fate(lo)):
-            if scalar:
-                return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
-            if not any(left(fate(boundary * 0.5**k)) for k in (1, 2, 3)):
-                unbounded = _unbounded_beyond(fate, [(hmax, fate(hmax))], hi, f_hi)
-                return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
-    # step: coarse scan of heights (looser tolerance: no start is near a boundary but by chance), then
-    # bisection on the first that does not return
-    heights = hmax * 4.0 ** -np.arange(8, -1, -1)
-    fates = [fate(h, max(rtol, 1e-8)) for h in heights]
+        tried = np.array([hi, lo] if scalar else [hi, lo, boundary / 2, boundary / 4, boundary / 8, hmax])
+        fs = _fates(loc, loc.s_star + tried[:, None] * d, attractors, others, rtol)
+        if left(fs[0]) and not any(left(f) for f in fs[1:5]):
+            if not scalar:
+                unbounded = _unbounded_beyond(fate, [(hmax, fs[5])], hi, fs[0])
+            return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), fs[0], unbounded)
+    # step: coarse scan of heights, all at once (looser tolerance: no start is near a boundary but by
+    # chance; the two that bracket the first departure are checked tightly), then bisection between them
+    heights = hmax * 8.0 ** -np.arange(5, -1, -1)
+    fates = _fates(loc, loc.s_star + heights[:, None] * d, attractors, others, max(rtol, 1e-7))
     first = next((i for i, f in enumerate(fates) if left(f)), None)
+    if first is not None and (not left(fate(heights[first])) or (first and left(fate(heights[first - 1])))):
+        fates = _fates(loc, loc.s_star + heights[:, None] * d, attractors, others, rtol)  # redo it tightly
+        first = next((i for i, f in enumerate(fates) if left(f)), None)
     if first is None:
         return _Ray(boundary=boundary, unbounded=unbounded)
     lo, hi, f_hi = (0.0 if first == 0 else float(heights[first - 1])), float(heights[first]), fates[first]
-    while hi - lo > xtol * hi:
-        mid = 0.5 * (lo + hi)
-        f_mid = fate(mid)
-        if left(f_mid):
-            hi, f_hi = mid, f_mid
+    while hi - lo > xtol * hi:  # multisection: seven heights at once cut the bracket eightfold
+        mids = lo + (hi - lo) * np.arange(1, 8) / 8
+        fs = _fates(loc, loc.s_star + mids[:, None] * d, attractors, others, rtol)
+        out = next((i for i, f in enumerate(fs) if left(f)), None)
+        if out is None:
+            lo = float(mids[-1])
         else:
-            lo = mid
+            lo, hi, f_hi = (lo if out == 0 else float(mids[out - 1])), float(mids[out]), fs[out]
     if not scalar:
         unbounded = _unbounded_beyond(fate, list(zip(heights[first:], fates[first:])), hi, f_hi)
     return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
