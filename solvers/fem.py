@@ -180,6 +180,9 @@ def _rectangle_cells(size: Sequence[float], resolution: int | Sequence[int]) -> 
         raise ValueError(msg)
     lx, ly = _positive_length(values[0], "size[0]"), _positive_length(values[1], "size[1]")
     if np.ndim(resolution) == 1:
+        if len(resolution) != 2:
+            msg = f"`resolution` of a rectangle must be one count or (nx, ny), got {resolution!r}."
+            raise ValueError(msg)
         nx, ny = resolution
         return lx, ly, nx, ny
     n = _cell_count(resolution, "resolution")
@@ -239,7 +242,8 @@ def make_discretisation(
     size : ``L`` (or ``(L,)``), ``(Lx, Ly)``, or ``R`` (or ``(R,)``).
     resolution : interval: number of cells (elements). Rectangle: cells along the longer side, the other side
         in proportion (at least 2), or explicit ``(nx, ny)``. Disk: element edges along a radius, rounded to
-        the nearest power of two ``2^l`` (``l`` refinements; 64 gives the 12481-node mesh).
+        the nearest power of two ``2^l`` on a log scale (``l`` refinements; 64 gives the 12481-node mesh,
+        about as fine as a 64-cell-per-side square).
     method : ``"fv"`` (cell-centred finite volumes) or ``"p1"`` (P1 elements); disks are ``"p1"`` only.
     lumped : row-sum lumped (diagonal) mass; ``False`` gives the consistent P1 mass.
     """
