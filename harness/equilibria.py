@@ -360,7 +360,7 @@ def _newton(
 
 def _between(roots: np.ndarray) -> np.ndarray:
     """Points a quarter, half and three quarters of the way between every pair of roots, ``(d, m)``."""
-    pairs = [(a, b) for i, a in enumerate(roots) for b in roots[i + 1:]]
+    pairs = [(a, b) for i, a in enumerate(roots) for b in roots[i + 1 :]]
     pts = [a + t * (b - a) for a, b in pairs for t in (0.25, 0.5, 0.75)]
     return np.array(pts).T if pts else np.empty((roots.shape[1], 0))
 
@@ -543,9 +543,7 @@ def _continue(
     return x
 
 
-def _contract(
-    fun: Residual, jac: Callable, x0: np.ndarray, scale: np.ndarray, max_iter: int = 12
-) -> np.ndarray | None:
+def _contract(fun: Residual, jac: Callable, x0: np.ndarray, scale: np.ndarray, max_iter: int = 12) -> np.ndarray | None:
     """Plain Newton from ``x0`` that must contract (each step at most half the last, the first below 0.25
     in units of ``scale``); returns the root or None. Such a root is the one nearest ``x0``."""
     x = np.array(x0, dtype=float)

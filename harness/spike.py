@@ -185,19 +185,37 @@ def spike_analysis(
         raise ValueError(msg)
     base = {"sign": sign, "spike_eigenvalues": np.zeros(0), "local_states": ()}
     if hss is None:
-        return SpikePrediction(hss=None, well_mixed_stable=None, spike_stable=None, regime="unresolved",
-                               reason="no homogeneous steady state (the baseline was lost)", **base)
+        return SpikePrediction(
+            hss=None,
+            well_mixed_stable=None,
+            spike_stable=None,
+            regime="unresolved",
+            reason="no homogeneous steady state (the baseline was lost)",
+            **base,
+        )
     loc = _Local.at(kin, hss.state, lower, upper)
     if loc.ns == 0:
-        return SpikePrediction(hss=hss, well_mixed_stable=hss.stable, spike_stable=None, regime="unresolved",
-                               reason="the model has no slow species, so the spike limit is empty", **base)
+        return SpikePrediction(
+            hss=hss,
+            well_mixed_stable=hss.stable,
+            spike_stable=None,
+            regime="unresolved",
+            reason="the model has no slow species, so the spike limit is empty",
+            **base,
+        )
     states = local_states(kin, hss.state, loc.lo, loc.hi)
     eig = local_eigenvalues(kin, hss.state)
     stable = bool(np.all(eig.real < 0))
     slow_names = [n for n, s in zip(kin.species, loc.slow) if s]
     e = np.array([1.0 if n in pulse_species else 0.0 for n in slow_names])
-    common = {"hss": hss, "well_mixed_stable": hss.stable, "spike_stable": stable, "spike_eigenvalues": eig,
-              "local_states": states, "sign": sign}
+    common = {
+        "hss": hss,
+        "well_mixed_stable": hss.stable,
+        "spike_stable": stable,
+        "spike_eigenvalues": eig,
+        "local_states": states,
+        "sign": sign,
+    }
     if stable:
         out = _pulse_regime(loc, states, e, sign, rtol, use_boundary_hint)
     else:
@@ -274,8 +292,9 @@ def _scalar_roots(loc: _Local, points: int) -> list[np.ndarray]:
     """Roots of the scalar local equation on the box, ``s*`` itself included exactly."""
     lo, hi, s0 = float(loc.lo[0]), float(loc.hi[0]), float(loc.s_star[0])
     width = hi - lo
-    grid = np.unique(np.concatenate([np.linspace(lo, hi, points), lo + np.geomspace(1e-10 * width, width, points),
-                                     [s0]]))
+    grid = np.unique(
+        np.concatenate([np.linspace(lo, hi, points), lo + np.geomspace(1e-10 * width, width, points), [s0]])
+    )
     grid = grid[(grid >= lo) & (grid <= hi)]
     with np.errstate(all="ignore"):
         vals = loc.fun(grid[None, :])[0]
@@ -283,8 +302,15 @@ def _scalar_roots(loc: _Local, points: int) -> list[np.ndarray]:
     roots = list(grid[finite & (vals == 0)])
     sgn = np.sign(np.where(finite, vals, 0.0))
     for i in np.flatnonzero(sgn[:-1] * sgn[1:] < 0):
-        roots.append(brentq(lambda x: float(loc.fun(np.array([[x]]))[0, 0]), grid[i], grid[i + 1],
-                            xtol=1e-15 * max(width, 1.0), rtol=4 * np.finfo(float).eps))
+        roots.append(
+            brentq(
+                lambda x: float(loc.fun(np.array([[x]]))[0, 0]),
+                grid[i],
+                grid[i + 1],
+                xtol=1e-15 * max(width, 1.0),
+                rtol=4 * np.finfo(float).eps,
+            )
+        )
     roots = [r for r in roots if abs(r - s0) > 1e-9 * width] + [s0]
     roots.sort()
     distinct = [r for i, r in enumerate(roots) if i == 0 or r - roots[i - 1] > 1e-12 * width]
@@ -330,7 +356,7 @@ def _fate(
     if np.min(start) <= 1e-9:  # a start at round-off distance from an attractor is there already
         return _Fate("reached", int(np.argmin(start)))
     every = np.vstack([pts, np.array(others).reshape(-1, loc.ns)])
-    sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1:]]
+    sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1 :]]
     radius = min([1e-3, *(0.25 * x for x in sep)])
 
     def near(k: int):
@@ -381,11 +407,9 @@ def _fate(
     with np.errstate(all="ignore"):
         for _ in range(8):
             try:
-                sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=events, rtol=rtol,
-                                atol=atol)
+                sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=events, rtol=rtol, atol=atol)
             except ValueError:  # a peak event at round-off level near rest confused the event root search
-                sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=stops, rtol=rtol,
-                                atol=atol)
+                sol = solve_ivp(rhs, (t0, t0 + span), y, method="LSODA", jac=jac, events=stops, rtol=rtol, atol=atol)
                 sol.y_events = [*sol.y_events, *([np.empty((0, loc.ns))] * loc.ns)]
             if sol.status == 1:
                 k = next(k for k, te in enumerate(sol.t_events[: len(stops)]) if te.size)
@@ -413,7 +437,7 @@ def _fates(
     lo_out, hi_out = loc.lo - 1e-6 * width, loc.hi + 1e-6 * width
     pts = np.array(attractors).reshape(-1, loc.ns)
     every = np.vstack([pts, np.array(others).reshape(-1, loc.ns)])
-    sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1:]]
+    sep = [np.max(np.abs(a - b) / width) for i, a in enumerate(every) for b in every[i + 1 :]]
     radius = min([1e-3, *(0.25 * x for x in sep)])
     dist = np.sqrt(np.sum(((starts[:, None, :] - pts[None, :, :]) / width) ** 2, axis=2))  # (k, attractors)
     radii = np.minimum(radius, 0.5 * dist)
@@ -445,12 +469,21 @@ def _fates(
 
             def leave(t, z, m=m):
                 q = z.reshape(loc.ns, m)
-                return float(min(np.min((q - lo_out[:, None]) / width[:, None]),
-                                 np.min((hi_out[:, None] - q) / width[:, None])))
+                return float(
+                    min(np.min((q - lo_out[:, None]) / width[:, None]), np.min((hi_out[:, None] - q) / width[:, None]))
+                )
 
             leave.terminal, leave.direction = True, -1
-            sol = solve_ivp(rhs, (t0, t0 + span), y.ravel(), method="LSODA", jac=jac, events=[leave],
-                            rtol=rtol, atol=np.repeat(1e-2 * rtol * width, m))
+            sol = solve_ivp(
+                rhs,
+                (t0, t0 + span),
+                y.ravel(),
+                method="LSODA",
+                jac=jac,
+                events=[leave],
+                rtol=rtol,
+                atol=np.repeat(1e-2 * rtol * width, m),
+            )
             q = sol.y[:, -1].reshape(loc.ns, m)
             gone = ~np.all(np.isfinite(q), axis=0) | np.any(q < lo_out[:, None] + 1e-9 * width[:, None], axis=0)
             gone |= np.any(q > hi_out[:, None] - 1e-9 * width[:, None], axis=0) | (sol.status < 0)
@@ -627,14 +660,24 @@ def _unbounded_beyond(fate, tried: list[tuple[float, _Fate]], hi: float, f_hi: _
 def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hint: bool) -> dict:
     """Regime, thresholds and target for a spike-stable HSS, judged on pulses of the requested sign."""
     if not e.any():
-        return {"regime": "no-pattern",
-                "reason": "spike-stable HSS and no pulse species is slow (a fast pulse has no effect here)"}
-    rays = {s: _ray(loc, states, s * e, rtol, ode=(s == sign or loc.ns > 1), hint=hint,
-                    xtol=1e-8 if s == sign else 1e-5) for s in (1, -1)}
+        return {
+            "regime": "no-pattern",
+            "reason": "spike-stable HSS and no pulse species is slow (a fast pulse has no effect here)",
+        }
+    rays = {
+        s: _ray(loc, states, s * e, rtol, ode=(s == sign or loc.ns > 1), hint=hint, xtol=1e-8 if s == sign else 1e-5)
+        for s in (1, -1)
+    }
     ray = rays[sign]
-    out = {"threshold_up": rays[1].threshold, "threshold_down": rays[-1].threshold,
-           "threshold": ray.threshold, "threshold_boundary": ray.boundary, "threshold_ode": ray.ode,
-           "ode_bracket": ray.bracket, "unbounded_above": ray.unbounded}
+    out = {
+        "threshold_up": rays[1].threshold,
+        "threshold_down": rays[-1].threshold,
+        "threshold": ray.threshold,
+        "threshold_boundary": ray.boundary,
+        "threshold_ode": ray.ode,
+        "ode_bracket": ray.bracket,
+        "unbounded_above": ray.unbounded,
+    }
     word = "up" if sign > 0 else "down"
     other = rays[-sign].threshold
     note = "" if other is None else f" (a pulse of the other sign leaves above {other:.6g})"
@@ -649,18 +692,27 @@ def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hi
         stable = [st for st in states if st.stable]
         beyond = stable[ray.fate.index] if kind == "reached" else None
     if kind == "reached":
-        out.update(regime="pulse-triggered", target=beyond,
-                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a stable local state")
+        out.update(
+            regime="pulse-triggered",
+            target=beyond,
+            reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a stable local state",
+        )
     elif kind == "oscillates":
-        out.update(regime="pulse-triggered",
-                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a local oscillation")
+        out.update(
+            regime="pulse-triggered",
+            reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a local oscillation",
+        )
     elif kind == "escaped":
-        out.update(regime="no-pattern", unbounded_above=ray.threshold if ray.unbounded is None else ray.unbounded,
-                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} grows without bound in the "
-                          "local dynamics, which is not a pattern")
+        out.update(
+            regime="no-pattern",
+            unbounded_above=ray.threshold if ray.unbounded is None else ray.unbounded,
+            reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} grows without bound in the "
+            "local dynamics, which is not a pattern",
+        )
     else:
-        out.update(regime="unresolved",
-                   reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} did not settle")
+        out.update(
+            regime="unresolved", reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} did not settle"
+        )
     out["reason"] += note
     return out
 
@@ -695,13 +747,20 @@ def _unstable_regime(loc: _Local, states, e: np.ndarray, sign: int) -> dict:
         return {"regime": "unresolved", "reason": "spike-unstable HSS whose unstable mode leaves the local box"}
     if "escaped" in kinds:
         seen = ", ".join(f"{n}: {k}" for n, k in zip(sides, kinds))
-        return {"regime": "unresolved",
-                "reason": f"spike-unstable HSS and the local dynamics grow without bound ({seen})"}
+        return {
+            "regime": "unresolved",
+            "reason": f"spike-unstable HSS and the local dynamics grow without bound ({seen})",
+        }
     if "reached" in kinds:
         f = fates[kinds.index("reached")]
-        return {"regime": "self-patterning", "target": stable[f.index],
-                "reason": f"spike-unstable HSS; the local dynamics settle on a stable local state ({'/'.join(kinds)})"}
+        return {
+            "regime": "self-patterning",
+            "target": stable[f.index],
+            "reason": f"spike-unstable HSS; the local dynamics settle on a stable local state ({'/'.join(kinds)})",
+        }
     if "oscillates" in kinds:
-        return {"regime": "self-oscillating",
-                "reason": "spike-unstable HSS; the local dynamics settle on an oscillation"}
+        return {
+            "regime": "self-oscillating",
+            "reason": "spike-unstable HSS; the local dynamics settle on an oscillation",
+        }
     return {"regime": "unresolved", "reason": "spike-unstable HSS and the local dynamics did not settle"}

@@ -20,14 +20,16 @@ def kinetics(f, jac, species, slow, conservation=None) -> Kinetics:
     n = len(species)
     w = np.zeros((0, n)) if conservation is None else np.asarray(conservation, dtype=float).reshape(-1, n)
     slow = np.asarray(slow, dtype=bool)
-    return Kinetics(species=tuple(species), diffusion=np.where(slow, 0.01, 1.0), slow=slow, conservation=w,
-                    reaction=f, jacobian=jac)
+    return Kinetics(
+        species=tuple(species), diffusion=np.where(slow, 0.01, 1.0), slow=slow, conservation=w, reaction=f, jacobian=jac
+    )
 
 
 def cubic(a: float) -> Kinetics:
     """Bistable cubic ``du/dt = u (1 - u) (u - a)`` (common practice)."""
-    return kinetics(lambda u: u * (1 - u) * (u - a),
-                    lambda u: ((1 - u) * (u - a) - u * (u - a) + u * (1 - u))[None], ["u"], [True])
+    return kinetics(
+        lambda u: u * (1 - u) * (u - a), lambda u: ((1 - u) * (u - a) - u * (u - a) + u * (1 - u))[None], ["u"], [True]
+    )
 
 
 def toggle(alpha: float) -> Kinetics:

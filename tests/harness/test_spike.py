@@ -17,8 +17,9 @@ def kinetics(f, jac, species, slow, conservation=None) -> Kinetics:
     n = len(species)
     w = np.zeros((0, n)) if conservation is None else np.asarray(conservation, dtype=float).reshape(-1, n)
     slow = np.asarray(slow, dtype=bool)
-    return Kinetics(species=tuple(species), diffusion=np.where(slow, 0.01, 1.0), slow=slow, conservation=w,
-                    reaction=f, jacobian=jac)
+    return Kinetics(
+        species=tuple(species), diffusion=np.where(slow, 0.01, 1.0), slow=slow, conservation=w, reaction=f, jacobian=jac
+    )
 
 
 def membrane(k0: float = K0) -> Kinetics:
@@ -88,8 +89,13 @@ def focus(mu: float, quintic: bool, omega: float = 1.0) -> Kinetics:
         x, y = big_x - 1, big_y - 1
         g, gp = g_of(x * x + y * y, c)
         z = np.zeros_like(x)
-        return np.array([[g + 2 * x * x * gp, -omega + 2 * x * y * gp, mu * x],
-                         [omega + 2 * x * y * gp, g + 2 * y * y * gp, mu * y], [z, z, z - 1]])
+        return np.array(
+            [
+                [g + 2 * x * x * gp, -omega + 2 * x * y * gp, mu * x],
+                [omega + 2 * x * y * gp, g + 2 * y * y * gp, mu * y],
+                [z, z, z - 1],
+            ]
+        )
 
     return kinetics(f, jac, ["X", "Y", "c"], [True, True, False])
 
