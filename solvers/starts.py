@@ -139,7 +139,8 @@ def pulse_state(
     width : standard deviation of the Gaussian, in length units (the same in 1D and 2D, at any resolution).
         A warning is issued when it is below half the node spacing.
     where : pulse centre, see `pulse_point`. At an edge about half the Gaussian lies inside the domain.
-    compensate : ``(n,)`` conservation vector ``c`` (or ``(q, n)`` rows), total ``sum_s c_s * weights @ u_s``.
+    compensate : ``(n,)`` conservation vector ``c`` (or ``(q, n)`` rows, ``q = 0`` allowed), total
+        ``sum_s c_s * weights @ u_s``.
         When given, species ``into`` are shifted by spatially uniform amounts ``delta`` (the minimum-norm
         solution of ``C[:, into] @ delta = -added totals / measure``) so that every conserved total equals
         the baseline's to round-off.
@@ -191,10 +192,13 @@ def _compensation(
 ) -> np.ndarray:
     """Uniform shifts ``(n,)`` of species ``into`` that cancel ``added`` (the pulse's integral) in every total."""
     n = base.size
-    rows = np.atleast_2d(np.asarray(compensate, dtype=float))
+    rows = np.asarray(compensate, dtype=float)
+    rows = rows.reshape(0, n) if rows.size == 0 else np.atleast_2d(rows)
     if rows.ndim != 2 or rows.shape[1] != n or not np.all(np.isfinite(rows)):
         msg = f"`compensate` must be a finite vector over the {n} species (or rows of them), got {compensate!r}."
         raise ValueError(msg)
+    if rows.shape[0] == 0:
+        return np.zeros(n)  # no conservation law: nothing to keep
     if into is None:
         others = np.setdiff1d(np.arange(n), idx)
         into_idx = others[np.any(rows[:, others] != 0.0, axis=0)]

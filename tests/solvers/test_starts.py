@@ -49,6 +49,13 @@ def test_single_law_shifts_the_fast_species_by_mass_over_measure():
     np.testing.assert_allclose(state[1], 2.0 - added / 10.0, rtol=1e-14)
 
 
+def test_compensation_without_laws_is_plain_pulse():
+    """An empty set of conservation rows (a model without laws) leaves the plain pulse."""
+    disc = interval_fv(5.0, 50)
+    plain = pulse_state(disc, [0.3, 2.0], [0], 0.5, 0.3)
+    np.testing.assert_array_equal(pulse_state(disc, [0.3, 2.0], [0], 0.5, 0.3, compensate=np.zeros((0, 2))), plain)
+
+
 def test_pulse_height_and_width_convention_same_in_1d_and_2d():
     """Peak added is ``height``; at one ``width`` from the centre it is ``height e^-1/2``, in 1D and 2D alike."""
     height, width = 0.7, 0.25
