@@ -250,6 +250,9 @@ class _Local:
         if not np.all(hi > lo):
             msg = "`upper` must exceed `lower` for every slow species."
             raise ValueError(msg)
+        if np.any(state[slow] < lo) or np.any(state[slow] > hi):
+            msg = "`lower` and `upper` must contain the HSS's slow values."
+            raise ValueError(msg)
         return cls(kin=kin, u_star=state, slow=slow, lo=lo, hi=hi)
 
     @property
@@ -697,6 +700,8 @@ def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hi
             target=beyond,
             reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} reaches a stable local state",
         )
+        if ray.unbounded is not None:
+            out["reason"] += f", and above {ray.unbounded:.6g} grows without bound"
     elif kind == "oscillates":
         out.update(
             regime="pulse-triggered",
@@ -713,14 +718,17 @@ def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hi
         out.update(
             regime="unresolved", reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} did not settle"
         )
+    if ray.boundary is not None and ray.ode is not None and abs(ray.boundary - ray.ode) > 1e-6 * ray.boundary:
+        out["reason"] += f"; the routes disagree (boundary {ray.boundary:.8g}, ODE {ray.ode:.8g}): ODE taken"
     out["reason"] += note
     return out
 
 
 def _next_stable(loc: _Local, states, d: np.ndarray, h: float) -> LocalState | None:
     """One slow species: the stable local state next beyond height ``h`` along ``d``, if any before a root."""
-    ahead = sorted((float((st.values - loc.s_star) @ d), st) for st in states if (st.values - loc.s_star) @ d > h)
-    return ahead[0][1] if ahead and ahead[0][1].stable else None
+    ahead = [st for st in states if (st.values - loc.s_star) @ d > h]
+    ahead.sort(key=lambda st: float((st.values - loc.s_star) @ d))
+    return ahead[0] if ahead and ahead[0].stable else None
 
 
 def _unstable_regime(loc: _Local, states, e: np.ndarray, sign: int) -> dict:

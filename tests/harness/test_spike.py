@@ -278,6 +278,38 @@ def test_unbounded_beyond_threshold_is_no_pattern():
     assert "without bound" in p.reason
 
 
+def test_quartic_target_then_unbounded():
+    """Local da/dt = (a - 1)(a - 2)(a - 3)(a - 4) c with HSS a* = 1: slopes -6, 2, -2, 6 at the roots, so a
+    pulse above 1 reaches a = 3, and above 3 (beyond the root 4) grows without bound (derived)."""
+
+    def f(u):
+        a, c = u
+        return np.array([(a - 1) * (a - 2) * (a - 3) * (a - 4) * c, 1 - c])
+
+    def jac(u):
+        a, c = u
+        q = (a - 2) * (a - 3) * (a - 4) + (a - 1) * (a - 3) * (a - 4) + (a - 1) * (a - 2) * (a - 4)
+        q = q + (a - 1) * (a - 2) * (a - 3)
+        z = np.zeros_like(a)
+        return np.array([[q * c, (a - 1) * (a - 2) * (a - 3) * (a - 4)], [z, z - 1]])
+
+    kin = kinetics(f, jac, ["a", "c"], [True, False])
+    p = spike_analysis(kin, baseline_hss(kin, [1.0, 1.0]), ("a",))
+    assert p.regime == "pulse-triggered"
+    assert p.threshold_boundary == pytest.approx(1.0, rel=1e-12)
+    assert p.threshold_ode == pytest.approx(1.0, rel=1e-6)
+    assert p.target.values[0] == pytest.approx(3.0, rel=1e-12)
+    assert p.unbounded_above == pytest.approx(3.0, rel=1e-12)
+    np.testing.assert_allclose(sorted(np.real(s.eigenvalues[0]) for s in p.local_states), [-6, -2, 2, 6], atol=1e-9)
+
+
+def test_box_must_hold_the_hss(wave):
+    """A local box that leaves out the HSS is refused."""
+    kin, hss = wave
+    with pytest.raises(ValueError, match="`lower` and `upper`"):
+        spike_analysis(kin, hss, ("a",), lower=[1.0], upper=[5.0])
+
+
 def test_unresolved_without_hss():
     """A lost HSS gives an unresolved point with its reason."""
     p = spike_analysis(exchange(), None, ("a",))
