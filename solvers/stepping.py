@@ -1,0 +1,644 @@
+"""Time integration of the semi-discrete system to a settled state, with error control.
+
+Our stepper is ROS2, the two-stage linearly implicit Rosenbrock W-method of Verwer, Spee, Blom and
+Hundsdorfer (1999, SIAM J. Sci. Comput. 20, "A second-order Rosenbrock method applied to photochemical
+dispersion problems"), ``gamma = 1 + 1/sqrt(2)``, in mass form ``B u' = F(u)``::
+
+    W k1 = F(u_n),   W k2 = F(u_n + h k1) - 2 B k1,   u_{n+1} = u_n + h (3 k1 + k2) / 2,
+    W = B - gamma h A,   error estimate  h (k1 + k2) / 2  (against the embedded Euler step).
+
+It is second order for *any* ``A`` (a W-method) and L-stable when ``A`` is the exact Jacobian. That is why
+it won: the matrix ``W`` may be kept across steps (factorisation reuse) and may be replaced by a cheap
+approximate factorisation without losing the order, only stability margin, which the error control
+watches. Both diffusion and reactions are linearly implicit, with the analytic reaction Jacobian; a steady
+state is a fixed point of the step for any ``W`` (``F = 0`` gives ``k1 = k2 = 0``), and as the state settles
+``k1, k2 -> 0``, so the step grows by the controller's maximum factor per step.
+
+Two linear-solve backends (registry `BACKENDS`):
+
+- ``"lu"``: the sparse ``W`` with the Jacobian at the current state, factorised by SuperLU, kept while the
+  step stays within a dead band of the step it was made for and the Jacobian is younger than
+  ``jac_every`` steps; refactorised at once after a rejection.
+- ``"dct"``: uniform finite-volume grids (lumped mass). Approximate factorisation
+  ``W ~ (I + gamma h D Lambda)(I - gamma h J_r)``: the diffusion factor is diagonal after a type-2 cosine
+  transform (it diagonalises the Neumann finite-volume Laplacian exactly), the reaction factor is a small
+  ``n x n`` block per node. Both are rebuilt for every new step size at the cost of a few vector operations.
+
+Measured against `scipy.integrate.solve_ivp` (BDF) in ``benchmarks/bench_solvers.py``; the figures are in
+the benchmark's output, not asserted anywhere. Candidates not implemented: ROS3P (third order but not a
+W-method, so no factorisation reuse or approximate factorisation), variable-step BDF2 (needs Newton
+iterations per step) and IMEX SBDF2 (explicit reactions: a large step near a steady state can destabilise
+it).
+
+Conservation: for a row ``w`` with ``w @ f == 0`` every stage satisfies ``sum_i w_i 1^T B k_i = 0`` exactly
+in exact arithmetic (``1^T K = 0``, ``w^T J_r = 0``), for both backends, so totals are kept to round-off.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.fft as sfft
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from scipy.integrate import BDF, DenseOutput, OdeSolver
+
+from .records import Discretisation, History
+from .settle import SettleRule, relative_rate
+from .system import MolSystem
+
+__all__ = ["BACKENDS", "METHODS", "Ros2", "RunResult", "StopRun", "integrate"]
+
+GAMMA = 1.0 + 1.0 / np.sqrt(2.0)
+
+
+class StopRun(StopIteration):
+    """Raised by an observer's ``handle`` to end a run early (status ``reached-end``)."""
+
+
+class BackendError(RuntimeError):
+    """A linear-solve backend could not build or apply ``W`` (singular, non-finite)."""
+
+
+# ---- linear-solve backends ---------------------------------------------------------------------------
+
+BACKENDS: dict[str, type] = {}
+
+
+def _backend(name: str):
+    """Register a backend class under ``name``."""
+
+    def deco(cls: type) -> type:
+        cls.name = name
+        BACKENDS[name] = cls
+        return cls
+
+    return deco
+
+
+@_backend("lu")
+class SparseLU:
+    """``W = B - gamma h J(u)`` assembled sparse and factorised by SuperLU; reused while it is valid."""
+
+    cheap_rescale = False
+
+    def __init__(self, system: MolSystem) -> None:
+        self.system = system
+        self.njev = 0
+        self.nlu = 0
+        self._lu = None
+        if not system.lumped:
+            self._mass = sp.block_diag([system.disc.mass] * system.n, format="csr")
+
+    def update(self, u: np.ndarray | None, gh: float) -> None:
+        """Factorise ``W`` for ``gamma h = gh`` with the Jacobian at ``u`` (None: keep the last one)."""
+        sysm = self.system
+        if u is not None or self._jac is None:
+            self._jac = sysm.mass_jacobian(u)
+            self.njev += 1
+        jac = self._jac
+        if sysm.lumped:
+            data = -gh * jac.data
+            data[sysm.diagonal_pos] += 1.0
+            # CSR data of W read as CSC is W^T: factorise that and solve with trans="T".
+            wt = sp.csc_matrix((data, jac.indices, jac.indptr), shape=jac.shape)
+            trans = "T"
+        else:
+            wt = (self._mass - gh * jac).tocsc()
+            trans = "N"
+        try:
+            self._lu = spla.splu(wt)
+        except RuntimeError as err:
+            raise BackendError(str(err)) from err
+        self._trans = trans
+        self.nlu += 1
+
+    _jac = None
+
+    def solve(self, r: np.ndarray) -> np.ndarray:
+        """``W^-1 r`` for ``r (n, m)``."""
+        return self._lu.solve(r.ravel(), trans=self._trans).reshape(r.shape)
+
+
+def cosine_eigenvalues(disc: Discretisation) -> np.ndarray:
+    """Eigenvalues of ``M^-1 K`` on a uniform finite-volume grid, shaped like the grid (DCT-II order).
+
+    For ``N`` cells of width ``dx`` they are ``(2 - 2 cos(pi k / N)) / dx^2`` per direction, summed over
+    directions; the eigenvectors are the type-2 cosine modes ``cos(pi k (j + 1/2) / N)``.
+    """
+    axes = []
+    for cells, length in zip(disc.grid, disc.size, strict=True):
+        dx = length / cells
+        axes.append((2.0 - 2.0 * np.cos(np.pi * np.arange(cells) / cells)) / dx**2)
+    return sum(np.meshgrid(*axes, indexing="ij", sparse=True))
+
+
+def cosine_applies(disc: Discretisation, rng_seed: int = 0) -> bool:
+    """Whether ``M^-1 K`` of ``disc`` is the uniform-grid Neumann Laplacian that the cosine transform diagonalises.
+
+    Checked, not assumed: apply both to a random vector and compare.
+    """
+    if disc.grid is None or not disc.lumped or disc.method != "fv" or len(disc.grid) != len(disc.size):
+        return False
+    if int(np.prod(disc.grid)) != disc.m:
+        return False
+    v = np.random.default_rng(rng_seed).standard_normal(disc.grid)
+    lap = sp.diags(1.0 / disc.weights) @ sp.csr_matrix(disc.stiffness)
+    direct = (lap @ v.ravel()).reshape(disc.grid)
+    axes = tuple(range(v.ndim))
+    spectral = sfft.idctn(cosine_eigenvalues(disc) * sfft.dctn(v, type=2, norm="ortho", axes=axes),
+                          type=2, norm="ortho", axes=axes)
+    return bool(np.linalg.norm(direct - spectral) <= 1e-9 * np.linalg.norm(direct))
+
+
+@_backend("dct")
+class CosineFactored:
+    """Exact ``W = I - gamma h (J_d + J_r)`` solved by GMRES, preconditioned by a factorisation done by transforms.
+
+    The preconditioner ``P = (I + gamma h D Lambda)(I - gamma h J_r)`` is the approximate factorisation:
+    the diffusion factor is diagonal after a type-2 cosine transform, the reaction factor a small ``n x n``
+    block per node. Alone it is a poor ``W`` once ``gamma h |J_r|`` is not small (it under-damps and
+    stalls), so each stage is refined by GMRES on the exact ``W`` to a relative residual ``eta``; usually
+    zero or one iteration is needed.
+    """
+
+    cheap_rescale = True
+
+    def __init__(self, system: MolSystem, theta: float = 1.0) -> None:
+        if not cosine_applies(system.disc):
+            msg = "backend `dct` needs a uniform finite-volume grid with lumped mass (`disc.grid`)."
+            raise ValueError(msg)
+        self.system = system
+        self.njev = 0
+        self.nlu = 0
+        self.theta = float(theta)
+        self._grid = tuple(system.disc.grid)
+        shape = (-1,) + (1,) * len(self._grid)
+        self._lam = cosine_eigenvalues(system.disc)[None] * system.diffusion.reshape(shape)
+        self._axes = tuple(range(1, 1 + len(self._grid)))
+        self._jr = None
+
+    def update(self, u: np.ndarray | None, gh: float) -> None:
+        """Rebuild both factors for ``gamma h = gh``, with the reaction Jacobian at ``u`` (None: keep it)."""
+        if u is not None or self._jr is None:
+            self._jr = np.moveaxis(np.asarray(self.system.jacobian(u), dtype=float), 2, 0)  # (m, n, n)
+            self.njev += 1
+        n = self.system.n
+        norm = np.abs(self._jr).sum(axis=2).max(axis=1)  # per-node infinity norm
+        with np.errstate(divide="ignore"):
+            shrink = np.minimum(1.0, self.theta / (gh * norm))
+        block = np.eye(n)[None] - (gh * shrink)[:, None, None] * self._jr
+        if n == 1:
+            inv = 1.0 / block
+        elif n == 2:
+            a, b, c, d = block[:, 0, 0], block[:, 0, 1], block[:, 1, 0], block[:, 1, 1]
+            det = a * d - b * c
+            inv = np.stack([np.stack([d, -b], -1), np.stack([-c, a], -1)], -2) / det[:, None, None]
+        else:
+            try:
+                inv = np.linalg.inv(block)
+            except np.linalg.LinAlgError as err:
+                raise BackendError(str(err)) from err
+        if not np.all(np.isfinite(inv)):
+            msg = "singular reaction block in W"
+            raise BackendError(msg)
+        self._inv = inv
+        self._gh = gh
+        self._diag = 1.0 / (1.0 + gh * self._lam)
+        self.nlu += 1
+
+    def _precondition(self, r: np.ndarray) -> np.ndarray:
+        """``P^-1 r``: diffusion factor by cosine transforms, then the node blocks."""
+        n = self.system.n
+        x = r.reshape((n,) + self._grid)
+        z = sfft.idctn(self._diag * sfft.dctn(x, type=2, norm="ortho", axes=self._axes),
+                       type=2, norm="ortho", axes=self._axes).reshape(n, -1)
+        if n == 1:
+            return self._inv[:, 0, 0] * z
+        return np.einsum("mij,jm->im", self._inv, z)
+
+    def _apply_w(self, v: np.ndarray) -> np.ndarray:
+        """``W v`` with the diffusion operator and the stored reaction Jacobian."""
+        diff = (self.system.diffusion_operator @ v.ravel()).reshape(v.shape)
+        react = np.einsum("mij,jm->im", self._jr, v)
+        return v - self._gh * (diff + react)
+
+    def solve(self, r: np.ndarray) -> np.ndarray:
+        """``W^-1 r`` with the factored ``W``."""
+        return self._precondition(r)
+
+
+def choose_backend(disc: Discretisation) -> str:
+    """``"dct"`` where the cosine transform applies, ``"lu"`` otherwise."""
+    return "dct" if cosine_applies(disc) else "lu"
+
+
+# ---- the stepper -------------------------------------------------------------------------------------
+
+
+class HermiteDense(DenseOutput):
+    """Cubic Hermite interpolant from the states and rates at both ends of a step (keeps linear totals)."""
+
+    def __init__(self, t_old: float, t: float, y0, y1, f0, f1) -> None:
+        super().__init__(t_old, t)
+        self.h = t - t_old
+        self.y0, self.y1, self.f0, self.f1 = y0, y1, f0, f1
+
+    def _call_impl(self, t):
+        s = (np.asarray(t, dtype=float) - self.t_old) / self.h
+        h00 = (1 + 2 * s) * (1 - s) ** 2
+        h10 = s * (1 - s) ** 2
+        h01 = s * s * (3 - 2 * s)
+        h11 = s * s * (s - 1)
+        out = (np.multiply.outer(self.y0, h00) + np.multiply.outer(self.f0, self.h * h10)
+               + np.multiply.outer(self.y1, h01) + np.multiply.outer(self.f1, self.h * h11))
+        return out
+
+
+class Ros2(OdeSolver):
+    """ROS2 W-method on a `MolSystem`, following scipy's `OdeSolver` contract (``y`` is flattened).
+
+    Parameters
+    ----------
+    system : the semi-discrete system.
+    t0, y0, t_bound : start time, flattened start state, end time.
+    rtol, atol : local error tolerances (weighted RMS over nodes and species).
+    backend : a key of `BACKENDS` or ``"auto"`` (cosine transform where it applies).
+    first_step, max_step : step-size limits; ``first_step`` None picks one from the rate at ``y0``.
+    fixed_step : take steps of exactly this size with no error control (for convergence studies).
+    jac_every : refresh the Jacobian at least this often (accepted steps).
+    """
+
+    def __init__(
+        self,
+        system: MolSystem,
+        t0: float,
+        y0: np.ndarray,
+        t_bound: float,
+        *,
+        rtol: float = 1e-4,
+        atol: float = 1e-8,
+        backend: str = "auto",
+        first_step: float | None = None,
+        max_step: float = np.inf,
+        fixed_step: float | None = None,
+        jac_every: int = 10,
+        backend_options: dict | None = None,
+    ) -> None:
+        super().__init__(system.rhs, t0, y0, t_bound, vectorized=False)
+        if t_bound <= t0:
+            msg = f"`t_bound` must exceed `t0` (forward integration only), got {t_bound!r} <= {t0!r}."
+            raise ValueError(msg)
+        if backend == "auto":
+            backend = choose_backend(system.disc)
+        if backend not in BACKENDS:
+            msg = f"`backend` must be one of {sorted(BACKENDS)} or 'auto', got {backend!r}."
+            raise ValueError(msg)
+        self.system = system
+        self.backend = BACKENDS[backend](system, **(backend_options or {}))
+        self.rtol, self.atol = float(rtol), float(atol)
+        self.max_step = float(max_step)
+        self.fixed_step = fixed_step
+        self.jac_every = int(jac_every)
+        self._w = system.disc.weights / system.disc.weights.sum()
+        self.u = self.y.reshape(system.shape).copy()
+        self.y = self.u.ravel()
+        self.force = system.force(self.u)
+        self.nfev = 1
+        self.nrejected = 0
+        self.dudt = system.solve_mass(self.force)
+        self._gh = None
+        self._age = 0
+        self._fresh = False
+        self.t_old = None
+        self._prev = None
+        if fixed_step is not None:
+            self.h = float(fixed_step)
+        elif first_step is not None:
+            self.h = float(first_step)
+        else:
+            self.h = self._initial_step()
+        self.h = min(self.h, self.max_step, self.t_bound - self.t)
+
+    def _scale(self, u: np.ndarray, v: np.ndarray) -> np.ndarray:
+        return self.atol + self.rtol * np.maximum(np.abs(u), np.abs(v))
+
+    def _norm(self, e: np.ndarray, sc: np.ndarray) -> float:
+        """Weighted RMS of ``e / sc`` over nodes (node weights) and species."""
+        q = e / sc
+        return float(np.sqrt(np.sum((q * q) @ self._w) / q.shape[0]))
+
+    def _initial_step(self) -> float:
+        sc = self._scale(self.u, self.u)
+        d0, d1 = self._norm(self.u, sc), self._norm(self.dudt, sc)
+        h = 1e-6 if d0 < 1e-5 or d1 < 1e-5 else 0.01 * d0 / d1
+        return max(h, 1e-12 * max(1.0, abs(self.t)))
+
+    def _prepare(self, h: float, refresh: bool) -> None:
+        """Make ``W`` valid for step ``h``: rebuild when the step left the dead band or the Jacobian aged."""
+        gh = GAMMA * h
+        age_out = self._age >= self.jac_every
+        if refresh or age_out or self._gh is None:
+            self.backend.update(self.u, gh)
+            self._gh, self._age = gh, 0
+        elif self.backend.cheap_rescale:
+            if gh != self._gh:
+                self.backend.update(None, gh)
+                self._gh = gh
+        elif not (0.5 * self._gh <= gh <= 1.2 * self._gh):
+            self.backend.update(self.u, gh)
+            self._gh, self._age = gh, 0
+        # scipy's OdeSolver counters: Jacobian evaluations and factorisations (cosine backend: factor rebuilds)
+        self.njev, self.nlu = self.backend.njev, self.backend.nlu
+
+    def _step_impl(self):
+        system = self.system
+        u, f0 = self.u, self.force
+        h = min(self.h, self.t_bound - self.t, self.max_step)
+        if self.fixed_step is not None:
+            h = min(self.fixed_step, self.t_bound - self.t)
+        rejected = False
+        refresh = False
+        hmin = 10 * np.spacing(max(abs(self.t), abs(self.t_bound)))
+        while True:
+            if h < hmin:
+                return False, f"step size {h:.3g} fell below the minimum at t = {self.t:.6g}"
+            with np.errstate(all="ignore"):
+                try:
+                    self._prepare(h, refresh)
+                    # The factorisation may be for a nearby step size: W = B - gamma h_W J is a valid W-method.
+                    k1 = self.backend.solve(f0)
+                    f1 = system.force(u + h * k1)
+                    k2 = self.backend.solve(f1 - 2.0 * system.apply_mass(k1))
+                except BackendError:
+                    k1 = k2 = np.full_like(u, np.nan)
+                self.nfev += 1
+                u_new = u + h * (1.5 * k1 + 0.5 * k2)
+                err = self._norm(0.5 * h * (k1 + k2), self._scale(u, u_new))
+            if not np.isfinite(err):
+                h, rejected, refresh = 0.25 * h, True, True
+                self.nrejected += 1
+                continue
+            if self.fixed_step is None and err > 1.0:
+                h *= max(0.2, 0.9 * err**-0.5)
+                rejected, refresh = True, True
+                self.nrejected += 1
+                continue
+            with np.errstate(all="ignore"):
+                f_new = system.force(u_new)
+            self.nfev += 1
+            if not np.all(np.isfinite(f_new)):
+                h, rejected, refresh = 0.25 * h, True, True
+                self.nrejected += 1
+                continue
+            break
+        # step: accept, then propose the next step size
+        dudt_new = system.solve_mass(f_new)
+        self._prev = (self.t, u, self.dudt)
+        self.t = self.t + h
+        self.u, self.force, self.dudt = u_new, f_new, dudt_new
+        self.y = u_new.ravel()
+        self._age += 1
+        if self.fixed_step is None:
+            grow = 5.0 if err < 1e-10 else min(5.0, 0.9 * err**-0.5)
+            self.h = h * (min(1.0, grow) if rejected else max(0.2, grow))
+        return True, None
+
+    def _dense_output_impl(self):
+        t0, u0, d0 = self._prev
+        return HermiteDense(t0, self.t, u0.ravel(), self.y, d0.ravel(), self.dudt.ravel())
+
+
+# ---- the driver --------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class RunResult:
+    """One run of `integrate`.
+
+    Attributes
+    ----------
+    t_final, u : time reached and the state there ``(n, m)``.
+    status : ``"settled"`` (the settle rule fired), ``"reached-end"`` (``t_end`` reached, or an observer
+        stopped the run), ``"diverged"`` (non-finite or beyond ``bounds``), ``"failed"`` (the solver gave up).
+    message : what happened, in words.
+    success : ``status != "failed"``: the run itself worked (a diverging model is an answer, not a failure).
+    history : one row per accepted step (plus the start).
+    snap_t, snap_u : ``(k,)`` and ``(k, n, m)`` snapshots at the requested times up to ``t_final``; a run
+        that ended before its last requested time also gets its final state as a last snapshot.
+    nsteps, nrejected, nfev, njev, nlu : work counters (``nfev`` counts every right-hand-side evaluation).
+    """
+
+    t_final: float
+    u: np.ndarray
+    status: str
+    message: str
+    success: bool
+    history: History
+    snap_t: np.ndarray
+    snap_u: np.ndarray
+    nsteps: int
+    nrejected: int
+    nfev: int
+    njev: int
+    nlu: int
+
+
+def _make_rdcheck(system, u0, t_end, rtol, atol, options):
+    solver = Ros2(system, 0.0, u0.ravel(), t_end, rtol=rtol, atol=atol, **options)
+
+    def rate(s):
+        return s.dudt, 0
+
+    def rejected(s):
+        return s.nrejected
+
+    return solver, rate, rejected
+
+
+def _make_bdf(system, u0, t_end, rtol, atol, options):
+    system._require_lumped("method 'scipy-bdf'")
+    solver = BDF(system.rhs, 0.0, u0.ravel(), t_end, rtol=rtol, atol=atol, jac=system.jac, **options)
+
+    def rate(s):
+        return system.rhs(s.t, s.y).reshape(system.shape), 1
+
+    def rejected(s):
+        return 0
+
+    return solver, rate, rejected
+
+
+METHODS: dict[str, Callable] = {"rdcheck": _make_rdcheck, "scipy-bdf": _make_bdf}
+
+
+def _snapshot_times(snapshots: int | Sequence[float], t_end: float) -> np.ndarray:
+    if isinstance(snapshots, (int, np.integer)):
+        if snapshots < 0:
+            msg = f"`snapshots` must be a non-negative count or a sequence of times, got {snapshots!r}."
+            raise ValueError(msg)
+        return np.linspace(0.0, t_end, int(snapshots)) if snapshots != 1 else np.array([t_end])
+    times = np.sort(np.asarray(snapshots, dtype=float).ravel())
+    if times.size and (times[0] < 0 or times[-1] > t_end):
+        msg = f"`snapshots` times must lie in [0, t_end = {t_end}], got [{times[0]}, {times[-1]}]."
+        raise ValueError(msg)
+    return times
+
+
+class _Recorder:
+    """History rows, kept as lists until the run ends."""
+
+    def __init__(self, weights: np.ndarray) -> None:
+        self.w = weights / weights.sum()
+        self.t, self.mean, self.lo, self.hi, self.rate = [], [], [], [], []
+
+    def add(self, t: float, u: np.ndarray, rate: float) -> None:
+        self.t.append(t)
+        self.mean.append(u @ self.w)
+        self.lo.append(u.min(axis=1))
+        self.hi.append(u.max(axis=1))
+        self.rate.append(rate)
+
+    def history(self) -> History:
+        return History(np.array(self.t), np.array(self.mean), np.array(self.lo), np.array(self.hi),
+                       np.array(self.rate))
+
+
+def integrate(
+    disc: Discretisation,
+    diffusion: np.ndarray,
+    reaction: Callable[[np.ndarray], np.ndarray],
+    jacobian: Callable[[np.ndarray], np.ndarray],
+    u0: np.ndarray,
+    t_end: float,
+    *,
+    method: str = "rdcheck",
+    rtol: float = 1e-4,
+    atol: float = 1e-8,
+    settle: SettleRule | None = None,
+    snapshots: int | Sequence[float] = 0,
+    observers: Sequence[object] = (),
+    bounds: float | None = None,
+    **options,
+) -> RunResult:
+    """Integrate ``M du_i/dt = -D_i K u_i + M f_i(u)`` from ``u0`` at ``t = 0`` towards ``t_end``.
+
+    Parameters
+    ----------
+    disc : the spatial discretisation.
+    diffusion : ``(n,)`` diffusion coefficients.
+    reaction, jacobian : ``u (n, m) -> (n, m)`` and ``u (n, m) -> (n, n, m)``.
+    u0 : ``(n, m)`` start state.
+    t_end : time limit.
+    method : ``"rdcheck"`` (our ROS2 stepper) or ``"scipy-bdf"`` (scipy's BDF with the analytic sparse
+        Jacobian; lumped mass only), see `METHODS`.
+    rtol, atol : local error tolerances.
+    settle : stop early when this rule fires (status ``settled``); None runs to ``t_end``.
+    snapshots : a count of equally spaced times in ``[0, t_end]``, or the times themselves.
+    observers : objects with ``initialize(state, info)``, ``handle(state, t)`` (each accepted step) and
+        ``finalize(info)``; a `StopIteration` (e.g. `StopRun`) raised by ``handle`` ends the run.
+    bounds : largest ``|u|`` allowed before the run counts as diverged; default ``1e6 * max(1, max|u0|)``.
+    **options : passed to the stepper (`Ros2`: ``backend``, ``first_step``, ``max_step``, ``jac_every``;
+        BDF: ``first_step``, ``max_step``).
+
+    Returns
+    -------
+    RunResult; divergence and solver failure are statuses, never exceptions.
+    """
+    if method not in METHODS:
+        msg = f"`method` must be one of {sorted(METHODS)}, got {method!r}."
+        raise ValueError(msg)
+    system = MolSystem(disc, diffusion, reaction, jacobian)
+    u0 = np.array(u0, dtype=float)
+    if u0.shape != system.shape:
+        msg = f"`u0` must have shape (n, m) = {system.shape}, got {u0.shape}."
+        raise ValueError(msg)
+    t_end = float(t_end)
+    if not t_end > 0:
+        msg = f"`t_end` must be positive, got {t_end!r}."
+        raise ValueError(msg)
+    bound = 1e6 * max(1.0, float(np.max(np.abs(u0)))) if bounds is None else float(bounds)
+    times = _snapshot_times(snapshots, t_end)
+    rec = _Recorder(disc.weights)
+    snap_t, snap_u = [], []
+    info = {"t_start": 0.0, "t_end": t_end, "method": method, "shape": system.shape}
+    for obs in observers:
+        obs.initialize(u0, info)
+
+    with np.errstate(all="ignore"):
+        if not np.all(np.isfinite(u0)):
+            status, message = "diverged", "`u0` is not finite"
+            solver = None
+        else:
+            solver, rate_of, rejected_of = METHODS[method](system, u0, t_end, rtol, atol, options)
+            status, message = None, ""
+        extra_fev = 0
+        u = u0
+        if solver is not None:
+            d0, extra = rate_of(solver)
+            extra_fev += extra
+            rec.add(0.0, u0, relative_rate(disc.weights, u0, d0, atol))
+            tracker = settle.tracker(rtol) if settle is not None else None
+            next_snap = 0
+            while next_snap < times.size and times[next_snap] <= 0.0:
+                snap_t.append(0.0)
+                snap_u.append(u0.copy())
+                next_snap += 1
+        while status is None:
+            msg = solver.step()
+            u = solver.y.reshape(system.shape)
+            if solver.status == "failed":
+                big = not np.all(np.isfinite(u)) or np.max(np.abs(u)) > bound / 1e3
+                status = "diverged" if big else "failed"
+                message = f"solver failed: {msg}"
+                break
+            if not np.all(np.isfinite(u)) or np.max(np.abs(u)) > bound:
+                status, message = "diverged", f"|u| exceeded {bound:.3g} (or became non-finite) at t = {solver.t:.6g}"
+                break
+            dudt, extra = rate_of(solver)
+            extra_fev += extra
+            rel = relative_rate(disc.weights, u, dudt, atol)
+            rec.add(solver.t, u, rel)
+            if next_snap < times.size and times[next_snap] <= solver.t:
+                dense = solver.dense_output()
+                while next_snap < times.size and times[next_snap] <= solver.t:
+                    snap_t.append(times[next_snap])
+                    snap_u.append(dense(times[next_snap]).reshape(system.shape))
+                    next_snap += 1
+            try:
+                for obs in observers:
+                    obs.handle(u, solver.t)
+            except StopIteration as stop:
+                status, message = "reached-end", f"stopped by an observer at t = {solver.t:.6g}: {stop!r}"
+                break
+            if tracker is not None and tracker.update(solver.t, rel):
+                status, message = "settled", f"settled at t = {solver.t:.6g} (relative rate {rel:.3g})"
+                break
+            if solver.status == "finished":
+                status, message = "reached-end", f"reached t_end = {t_end:g} without settling"
+    t_final = 0.0 if solver is None else float(solver.t)
+    u_final = np.array(u, dtype=float).reshape(system.shape)
+    if times.size and t_final < times[-1] and (not snap_t or snap_t[-1] < t_final):
+        snap_t.append(t_final)
+        snap_u.append(u_final.copy())
+    done = {"status": status, "message": message, "t_final": t_final, "nsteps": len(rec.t) - 1}
+    for obs in observers:
+        obs.finalize(done)
+    nfev = (0 if solver is None else int(solver.nfev)) + extra_fev
+    return RunResult(
+        t_final=t_final,
+        u=u_final,
+        status=status,
+        message=message,
+        success=status != "failed",
+        history=rec.history(),
+        snap_t=np.array(snap_t, dtype=float),
+        snap_u=np.array(snap_u, dtype=float).reshape((-1,) + system.shape),
+        nsteps=max(len(rec.t) - 1, 0),
+        nrejected=0 if solver is None else rejected_of(solver),
+        nfev=nfev,
+        njev=0 if solver is None else int(solver.njev),
+        nlu=0 if solver is None else int(solver.nlu),
+    )

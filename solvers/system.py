@@ -1,0 +1,173 @@
+"""The semi-discrete reaction-diffusion system ``M du_i/dt = -D_i K u_i + M f_i(u)`` as plain operators.
+
+The state of ``n`` species on ``m`` nodes is an ``(n, m)`` array; flattened (C order, species-major) it is
+the ``y`` of `scipy.integrate.solve_ivp`. `MolSystem` exposes the right-hand side ``rhs(t, y)``, its sparse
+Jacobian ``jac(t, y)`` and the fixed pattern ``jac_sparsity``, so that ``solve_ivp`` can always run the
+problem: that is the reference route. It also exposes the *mass form* used by our own stepper and by the
+Newton polish, ``B du/dt = F(u)``, with ``B = I`` for a lumped mass (``F`` is then ``rhs``) and ``B = M``
+(block-diagonal over species) for a consistent one.
+
+Consistent (non-lumped) mass: ``rhs`` applies ``M^-1`` by a solve with a factorisation made once, but the
+Jacobian of ``rhs`` is then dense, so ``jac`` and ``jac_sparsity`` (and hence the ``scipy-bdf`` route) are
+restricted to lumped mass. The mass form (`force`, `mass_jacobian`) handles both.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+
+from .records import Discretisation
+
+__all__ = ["MolSystem"]
+
+
+def _check_diffusion(diffusion: np.ndarray) -> np.ndarray:
+    """Return ``diffusion`` as a 1-D float array of finite non-negative values, or raise."""
+    d = np.atleast_1d(np.asarray(diffusion, dtype=float))
+    if d.ndim != 1 or not np.all(np.isfinite(d)) or np.any(d < 0.0):
+        msg = f"`diffusion` must be a 1-D array of finite non-negative numbers, got {diffusion!r}."
+        raise ValueError(msg)
+    return d
+
+
+class MolSystem:
+    """Method-of-lines operators of one reaction-diffusion model on one discretisation.
+
+    Parameters
+    ----------
+    disc : the spatial discretisation (no-flux, assembled once).
+    diffusion : ``(n,)`` diffusion coefficients, 0 allowed.
+    reaction : ``u (n, m) -> f (n, m)``.
+    jacobian : ``u (n, m) -> J (n, n, m)``, ``J[i, j] = d f_i / d u_j``.
+    """
+
+    def __init__(
+        self,
+        disc: Discretisation,
+        diffusion: np.ndarray,
+        reaction: Callable[[np.ndarray], np.ndarray],
+        jacobian: Callable[[np.ndarray], np.ndarray],
+    ) -> None:
+        self.disc = disc
+        self.diffusion = _check_diffusion(diffusion)
+        self.reaction = reaction
+        self.jacobian = jacobian
+        self.n = self.diffusion.size
+        self.m = disc.m
+        self.shape = (self.n, self.m)
+        self.lumped = bool(disc.lumped)
+        stiffness = sp.csr_matrix(disc.stiffness, dtype=float)
+        if self.lumped:
+            w = np.asarray(disc.mass.diagonal() if sp.issparse(disc.mass) else disc.weights, dtype=float)
+            lap = sp.diags(1.0 / w) @ stiffness
+            self._mass_lu = None
+        else:
+            lap = stiffness
+            self._mass_lu = spla.splu(sp.csc_matrix(disc.mass, dtype=float))
+        # step: block-diagonal diffusion of the mass form, -D_i (M^-1) K for lumped, -D_i K otherwise
+        self.diffusion_operator = sp.kron(sp.diags(-self.diffusion), lap, format="csr")
+        self.stiffness = stiffness
+        self._build_pattern()
+
+    # ---- mass form B du/dt = F(u) --------------------------------------------------------------------
+
+    def force(self, u: np.ndarray) -> np.ndarray:
+        """``F(u)`` of the mass form, ``(n, m)``: ``rhs`` for lumped mass, ``-D K u + M f(u)`` otherwise."""
+        diff = (self.diffusion_operator @ u.ravel()).reshape(self.shape)
+        f = np.asarray(self.reaction(u), dtype=float)
+        if self.lumped:
+            return diff + f
+        return diff + (self.disc.mass @ f.T).T
+
+    def apply_mass(self, v: np.ndarray) -> np.ndarray:
+        """``B v`` for ``v (n, m)``: ``v`` itself for lumped mass, ``M v_i`` per species otherwise."""
+        if self.lumped:
+            return v
+        return (self.disc.mass @ v.T).T
+
+    def solve_mass(self, v: np.ndarray) -> np.ndarray:
+        """``B^-1 v`` for ``v (n, m)``, with the factorisation of ``M`` made once."""
+        if self.lumped:
+            return v
+        return self._mass_lu.solve(np.ascontiguousarray(v.T)).T
+
+    def rate(self, u: np.ndarray, force: np.ndarray | None = None) -> np.ndarray:
+        """``du/dt`` at ``u``, ``(n, m)``; pass ``force = F(u)`` if it is already known."""
+        return self.solve_mass(self.force(u) if force is None else force)
+
+    def mass_jacobian(self, u: np.ndarray, *, jr: np.ndarray | None = None) -> sp.csr_matrix:
+        """Sparse ``dF/du`` of the mass form (equal to `jac` for lumped mass)."""
+        jr = self.jacobian(u) if jr is None else jr
+        if self.lumped:
+            return self._jac_from_blocks(jr)
+        mass = sp.csr_matrix(self.disc.mass)
+        blocks = [[mass @ sp.diags(jr[i, j]) for j in range(self.n)] for i in range(self.n)]
+        return (self.diffusion_operator + sp.bmat(blocks, format="csr")).tocsr()
+
+    # ---- the reference route: y' = rhs(t, y) -------------------------------------------------------------
+
+    def rhs(self, t: float, y: np.ndarray) -> np.ndarray:
+        """``dy/dt`` for the flattened state ``y (n*m,)`` (the ``fun`` of ``solve_ivp``)."""
+        u = np.asarray(y, dtype=float).reshape(self.shape)
+        return self.rate(u).ravel()
+
+    def jac(self, t: float, y: np.ndarray) -> sp.csr_matrix:
+        """Sparse Jacobian of `rhs` (lumped mass only): ``kron(-diag D, M^-1 K)`` plus the node blocks."""
+        self._require_lumped("jac")
+        return self._jac_from_blocks(self.jacobian(np.asarray(y, dtype=float).reshape(self.shape)))
+
+    @property
+    def jac_sparsity(self) -> sp.csr_matrix:
+        """The fixed pattern of `jac` (ones), for ``solve_ivp(..., jac_sparsity=...)`` with finite differences."""
+        self._require_lumped("jac_sparsity")
+        data = np.ones_like(self._pattern_indices, dtype=float)
+        size = self.n * self.m
+        return sp.csr_matrix((data, self._pattern_indices, self._pattern_indptr), shape=(size, size))
+
+    def totals(self, u: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        """Conserved totals ``sum_i w_i (weights @ u_i)`` for each row ``w`` of ``rows (c, n)``."""
+        rows = np.asarray(rows, dtype=float).reshape(-1, self.n)
+        return rows @ (u @ self.disc.weights)
+
+    # ---- internals ---------------------------------------------------------------------------------------
+
+    def _require_lumped(self, what: str) -> None:
+        """Raise if the mass is consistent: the Jacobian of ``M^-1 F`` is dense."""
+        if not self.lumped:
+            msg = (
+                f"`{what}` needs a lumped (diagonal) mass; with a consistent mass the Jacobian of M^-1 F is "
+                "dense. Use the mass form (`mass_jacobian`) or a lumped discretisation."
+            )
+            raise ValueError(msg)
+
+    def _build_pattern(self) -> None:
+        """Fix the CSR pattern of the Jacobian and where diffusion and reaction entries land in it."""
+        size = self.n * self.m
+        diff = self.diffusion_operator.tocoo()
+        node = np.arange(self.m)
+        ii, jj = np.meshgrid(np.arange(self.n), np.arange(self.n), indexing="ij")
+        r_rows = (ii[:, :, None] * self.m + node).ravel()
+        r_cols = (jj[:, :, None] * self.m + node).ravel()
+        rows = np.concatenate([diff.row, r_rows])
+        cols = np.concatenate([diff.col, r_cols])
+        pattern = sp.csr_matrix((np.ones(rows.size), (rows, cols)), shape=(size, size))
+        pattern.sort_indices()
+        keys = np.repeat(np.arange(size, dtype=np.int64), np.diff(pattern.indptr)) * size + pattern.indices
+        self._pattern_indptr = pattern.indptr
+        self._pattern_indices = pattern.indices
+        diff_pos = np.searchsorted(keys, diff.row.astype(np.int64) * size + diff.col)
+        self._base = np.zeros(keys.size)
+        np.add.at(self._base, diff_pos, diff.data)
+        self._reaction_pos = np.searchsorted(keys, r_rows.astype(np.int64) * size + r_cols)
+        self.diagonal_pos = np.searchsorted(keys, np.arange(size, dtype=np.int64) * (size + 1))
+
+    def _jac_from_blocks(self, jr: np.ndarray) -> sp.csr_matrix:
+        """Fill the fixed pattern with diffusion plus the reaction blocks ``jr (n, n, m)``."""
+        data = self._base.copy()
+        data[self._reaction_pos] += np.asarray(jr, dtype=float).ravel()
+        size = self.n * self.m
+        return sp.csr_matrix((data, self._pattern_indices, self._pattern_indptr), shape=(size, size))
