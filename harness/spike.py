@@ -124,14 +124,15 @@ def local_states(
     upper: np.ndarray | None = None,
     *,
     points: int = 2000,
-    starts: int = 64,
+    starts: int = 32,
     seed: int = 0,
 ) -> tuple[LocalState, ...]:
     """All roots of ``f_slow(s, u_fast*) = 0`` in the local box, the HSS's own ``s*`` among them.
 
     One slow species: every sign change on a dense linear-plus-logarithmic grid (``points`` of each, and
     ``s*``) is refined by ``brentq`` (roots where the sign does not change, such as double roots, are
-    missed). Several: multi-start Newton with deflation (see :func:`harness.equilibria.all_roots`).
+    missed). Several: multi-start Newton with deflation (see :func:`harness.equilibria.all_roots`) from
+    the starts of :func:`_local_starts`.
     """
     loc = _Local.at(kin, state, lower, upper)
     if loc.ns == 0:
@@ -139,11 +140,32 @@ def local_states(
     if loc.ns == 1:
         roots = _scalar_roots(loc, points)
     else:
-        m = int(np.log2(max(2, starts)))
-        pts = qmc.Sobol(loc.ns, scramble=True, seed=seed).random_base2(m)
-        x0 = np.hstack([loc.s_star[:, None], (loc.lo + pts * (loc.hi - loc.lo)).T])
-        roots = all_roots(loc.fun, loc.jac, loc.lo, loc.hi, starts=x0, known=loc.s_star[None, :])
+        roots = all_roots(
+            loc.fun, loc.jac, loc.lo, loc.hi, starts=_local_starts(loc, starts, seed), known=loc.s_star[None, :]
+        )
     return tuple(sorted((loc.state_at(r) for r in roots), key=lambda st: tuple(st.values)))
+
+
+def _local_starts(loc: _Local, starts: int, seed: int) -> np.ndarray:
+    """Newton starts ``(ns, m)`` for the local states: points on the lines through ``s*`` along each slow
+    species (geometric steps both ways: local states often differ from the HSS mostly in one species),
+    then scrambled Sobol points alternately spread linearly and logarithmically over the box (local
+    structure tends to sit at small concentrations of a box that reaches far up)."""
+    steps = np.geomspace(1e-3, 1.0, 12)
+    line = [loc.s_star]
+    for i in range(loc.ns):
+        for sgn, room in ((1.0, loc.hi[i] - loc.s_star[i]), (-1.0, loc.s_star[i] - loc.lo[i])):
+            for h in steps * room:
+                p = loc.s_star.copy()
+                p[i] += sgn * h
+                line.append(p)
+    m = int(np.ceil(np.log2(max(2, starts))))
+    u = qmc.Sobol(loc.ns, scramble=True, seed=seed).random_base2(m)
+    lin = loc.lo + u * loc.width
+    log = loc.lo + loc.width * 10.0 ** (-6.0 * (1.0 - u))
+    spread = np.empty((2 * len(u), loc.ns))
+    spread[0::2], spread[1::2] = lin, log
+    return np.vstack([np.array(line), spread]).T
 
 
 def spike_analysis(
@@ -470,11 +492,10 @@ def _fates(
                 big[rows, cols] = loc.jac(z.reshape(loc.ns, m))
                 return big
 
-            def leave(t, z, m=m):
-                q = z.reshape(loc.ns, m)
-                return float(
-                    min(np.min((q - lo_out[:, None]) / width[:, None]), np.min((hi_out[:, None] - q) / width[:, None]))
-                )
+            lo_f, hi_f, w_f = (np.repeat(v, m) for v in (lo_out, hi_out, width))
+
+            def leave(t, z, lo_f=lo_f, hi_f=hi_f, w_f=w_f):
+                return float(min(((z - lo_f) / w_f).min(), ((hi_f - z) / w_f).min()))
 
             leave.terminal, leave.direction = True, -1
             sol = solve_ivp(
@@ -594,12 +615,13 @@ def _ray(
     # species, by runs at a half, a quarter and an eighth of it that must return), all at once
     if hint and boundary is not None and boundary < hmax:
         lo, hi = boundary * (1 - 1e-8), boundary * (1 + 1e-8)
-        tried = np.array([hi, lo] if scalar else [hi, lo, boundary / 2, boundary / 4, boundary / 8, hmax])
-        fs = _fates(loc, loc.s_star + tried[:, None] * d, attractors, others, rtol)
-        if left(fs[0]) and not any(left(f) for f in fs[1:5]):
+        f_hi, f_lo = _fates(loc, loc.s_star + np.array([[hi], [lo]]) * d, attractors, others, rtol)
+        far = np.array([boundary / 2, boundary / 4, boundary / 8, hmax])  # far from the boundary: looser
+        checks = [] if scalar else _fates(loc, loc.s_star + far[:, None] * d, attractors, others, max(rtol, 1e-7))
+        if left(f_hi) and not left(f_lo) and not any(left(f) for f in checks[:3]):
             if not scalar:
-                unbounded = _unbounded_beyond(fate, [(hmax, fs[5])], hi, fs[0])
-            return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), fs[0], unbounded)
+                unbounded = _unbounded_beyond(fate, [(hmax, checks[3])], hi, f_hi)
+            return _Ray(boundary, 0.5 * (lo + hi), (lo, hi), f_hi, unbounded)
     # step: coarse scan of heights, all at once (looser tolerance: no start is near a boundary but by
     # chance; the two that bracket the first departure are checked tightly), then bisection between them
     heights = hmax * 8.0 ** -np.arange(5, -1, -1)
