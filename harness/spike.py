@@ -456,8 +456,8 @@ def _fates(
 ) -> list[_Fate]:
     """:func:`_fate` for many starts ``(k, ns)`` at once: one ODE system of all of them (the kinetics are
     vectorised, so a step costs about as much as for one), checked for arrivals at the ends of four
-    growing chunks and stopped by an event whenever one leaves the box; those still undecided then
-    (cycles, slow ones) go on alone in :func:`_fate`."""
+    growing chunks, which stop early when one leaves the box or the last one arrives; those still
+    undecided then (cycles, slow ones) go on alone in :func:`_fate`."""
     width = loc.width
     lo_out, hi_out = loc.lo - 1e-6 * width, loc.hi + 1e-6 * width
     pts = np.array(attractors).reshape(-1, loc.ns)
@@ -498,23 +498,28 @@ def _fates(
                 return float(min(((z - lo_f) / w_f).min(), ((hi_f - z) / w_f).min()))
 
             leave.terminal, leave.direction = True, -1
-            sol = solve_ivp(
-                rhs,
-                (t0, t0 + span),
-                y.ravel(),
-                method="LSODA",
-                jac=jac,
-                events=[leave],
-                rtol=rtol,
-                atol=np.repeat(1e-2 * rtol * width, m),
-            )
+            r2 = radii[live] ** 2  # (m, attractors)
+
+            def settled(t, z, m=m, r2=r2):  # crosses zero when the last run enters an attractor's ball
+                q = z.reshape(loc.ns, m)
+                d2 = np.sum(((q[:, :, None] - pts.T[:, None, :]) / width[:, None, None]) ** 2, axis=0)
+                return float(np.max(np.min(d2 - r2, axis=1)))
+
+            settled.terminal, settled.direction = True, -1
+            opts = {"method": "LSODA", "jac": jac, "rtol": rtol, "atol": np.repeat(1e-2 * rtol * width, m)}
+            try:
+                sol = solve_ivp(
+                    rhs, (t0, t0 + span), y.ravel(), events=[leave, settled] if len(pts) else [leave], **opts
+                )
+            except ValueError:  # the event root search met a sign mismatch at round-off level: drop `settled`
+                sol = solve_ivp(rhs, (t0, t0 + span), y.ravel(), events=[leave], **opts)
             q = sol.y[:, -1].reshape(loc.ns, m)
             gone = ~np.all(np.isfinite(q), axis=0) | np.any(q < lo_out[:, None] + 1e-9 * width[:, None], axis=0)
             gone |= np.any(q > hi_out[:, None] - 1e-9 * width[:, None], axis=0) | (sol.status < 0)
             keep = []
             for j, k in enumerate(live):
                 d = np.sqrt(np.sum(((q[:, j] - pts) / width) ** 2, axis=1)) if len(pts) else np.array([])
-                hit = np.flatnonzero(d <= radii[k])
+                hit = np.flatnonzero(d <= radii[k] * (1 + 1e-6))
                 if gone[j]:
                     out[k] = _Fate("escaped")
                 elif hit.size:
