@@ -49,7 +49,7 @@ class SettleRule:
 
     tol: float = 1e-6
     window: float = 20.0
-    min_steps: int = 10
+    min_steps: int = 4
 
     def __post_init__(self) -> None:
         if not (np.isfinite(self.tol) and self.tol > 0):
