@@ -174,7 +174,7 @@ def test_conserved_total_to_roundoff(dim, method, backend):
     assert abs(disc.weights @ res.u.sum(axis=0) - total0) < 1e-10 * total0
 
 
-# ---- settling ---------------------------------------------------------------------------------------------------------
+# ---- settling ----------------------------------------------------------------------------------------
 
 
 @pytest.fixture(scope="module")
@@ -239,7 +239,7 @@ def test_perturbed_pattern_returns(settled_pattern, rng):
     assert np.linalg.norm(res.u - pol.u) / np.linalg.norm(pol.u) < 1e-4
 
 
-# ---- statuses ------------------------------------------------------------------------------------------------------------
+# ---- statuses ----------------------------------------------------------------------------------------
 
 
 def test_blow_up_diverges():
@@ -277,7 +277,8 @@ class _Recorder:
     def handle(self, state, t):
         self.calls.append(("handle", t))
         if len(self.calls) > self.stop_after:
-            raise StopRun("enough")
+            msg = "enough"
+            raise StopRun(msg)
 
     def finalize(self, info):
         self.calls.append(("finalize", info["status"]))
