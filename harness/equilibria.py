@@ -16,6 +16,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from scipy.optimize import linprog
@@ -32,6 +33,7 @@ __all__ = [
     "equilibrium",
     "find_hss",
     "follow_baseline",
+    "sobol",
     "trace_baseline",
 ]
 
@@ -289,7 +291,7 @@ def _newton(
     *,
     power: float = 2.0,
     shift: float = 1.0,
-    max_iter: int = 60,
+    max_iter: int = 40,
     xtol: float = 1e-12,
     ftol: float = 1e-8,
     centre: np.ndarray | None = None,
@@ -339,7 +341,7 @@ def _newton(
             lam = np.ones(act.size)
             new = xa + step
             pending = np.arange(act.size)
-            for _ in range(12):
+            for _ in range(8):
                 trial = xa[:, pending] + lam[pending] * step[:, pending]
                 gt = fun(trial)
                 lt = _log_deflation(trial, deflated, width, power, shift)[0] if deflated.shape[0] else 0.0
@@ -356,6 +358,18 @@ def _newton(
             far = np.any(np.abs(new - centre[:, None]) > 1.5 * width[:, None], axis=0)  # a box width outside
             alive[act] &= np.all(np.isfinite(new), axis=0) & ~stuck & ~far
     return x, done
+
+
+@lru_cache(maxsize=64)
+def _sobol(d: int, log2m: int, seed: int) -> np.ndarray:
+    pts = qmc.Sobol(d, scramble=True, seed=seed).random_base2(log2m)
+    pts.flags.writeable = False
+    return pts
+
+
+def sobol(d: int, log2m: int, seed: int) -> np.ndarray:
+    """``2**log2m`` scrambled Sobol points in ``[0, 1)^d``, seeded (cached: the same call, the same points)."""
+    return _sobol(d, log2m, seed).copy()
 
 
 def _between(roots: np.ndarray) -> np.ndarray:
@@ -472,7 +486,7 @@ def _constrained_starts(
     n = lower.size
     m = max(2, int(2 ** np.ceil(np.log2(max(starts, 2)))))
     if w.shape[0] == 0:
-        pts = qmc.Sobol(n, scramble=True, seed=seed).random_base2(int(np.log2(m)))
+        pts = sobol(n, int(np.log2(m)), seed)
         return (lower + pts * (upper - lower)).T
     null = conserved_basis(w, n)  # (n, r)
     up = w.T @ t  # particular solution (w has orthonormal rows)
@@ -490,7 +504,7 @@ def _constrained_starts(
         if not (res_lo.success and res_hi.success):
             return None
         lo_z[i], hi_z[i] = res_lo.x[i], res_hi.x[i]
-    pts = qmc.Sobol(r, scramble=True, seed=seed).random_base2(int(np.log2(m)))
+    pts = sobol(r, int(np.log2(m)), seed)
     u = up[:, None] + null @ (lo_z + pts * (hi_z - lo_z)).T
     for _ in range(20):
         u = np.clip(u, lower[:, None], upper[:, None])

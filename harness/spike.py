@@ -19,9 +19,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq
-from scipy.stats import qmc
 
-from .equilibria import Equilibrium, all_roots
+from .equilibria import Equilibrium, all_roots, sobol
 from .kinetics import Kinetics
 
 __all__ = [
@@ -160,7 +159,7 @@ def _local_starts(loc: _Local, starts: int, seed: int) -> np.ndarray:
                 p[i] += sgn * h
                 line.append(p)
     m = int(np.ceil(np.log2(max(2, starts))))
-    u = qmc.Sobol(loc.ns, scramble=True, seed=seed).random_base2(m)
+    u = sobol(loc.ns, m, seed)
     lin = loc.lo + u * loc.width
     log = loc.lo + loc.width * 10.0 ** (-6.0 * (1.0 - u))
     spread = np.empty((2 * len(u), loc.ns))
