@@ -8,8 +8,25 @@ them), and a pulse of height ``h`` puts ``s = s* + sign * h * e`` with ``e`` one
 species. A pulse on a fast species spreads at once in this limit and has no effect, so fast entries of the
 pulse are left out of ``e``.
 
-The regime names are those of the design (``REGIMES``). ``well_mixed_stable`` is carried as it is: where
-it is False the whole system leaves the HSS, and the regime still describes the reduced system near it.
+Thresholds come two ways. Route 1 (boundary): the distance along ``sign * e`` to an unstable local state
+on the ray (one slow species: the nearest root beyond ``s*``, the basin's edge). Route 2 (ODE): bisection
+(multisection) on ``h`` with runs of the local ODE (LSODA, analytic Jacobian, ``rtol`` 1e-10), each run
+classified as returned (entered a small ball around ``s*``), reached another stable local state, grew
+without bound (left the local box, the region of interest), oscillates (its maxima settle on a stable
+cycle) or unsettled. Where route 1 applies, route 2 checks ``h1 (1 -+ 1e-8)`` first, so both agree to
+1e-8; else it scans heights up to the box's edge and bisects to 1e-8 (1e-5 for the sign not asked for).
+
+Regimes (names of the design, ``REGIMES``), judged on pulses of the requested sign:
+spike-stable HSS and no pulse leaves its basin -> "no-pattern"; a pulse above the threshold reaches a
+stable local state or a local oscillation -> "pulse-triggered"; it only grows without bound ->
+"no-pattern" with ``unbounded_above`` (never a pattern); spike-unstable HSS whose unstable mode, on either
+side, settles on a stable local state -> "self-patterning", on an oscillation -> "self-oscillating";
+anything else (growth without bound of a spike-unstable HSS, runs that do not settle, no HSS) ->
+"unresolved", with the reason. ``well_mixed_stable`` is carried as it is: where it is False the whole
+system leaves the HSS, and the regime still describes the reduced system near it.
+
+Not handled: a conservation law among slow species only (the local block then has a structural zero
+eigenvalue and the HSS counts as spike-unstable), and local roots where ``f_slow`` does not change sign.
 """
 
 from __future__ import annotations
