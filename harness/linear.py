@@ -671,9 +671,12 @@ def critical_ratio(
 
     The fast coefficients stay as in ``kin``; the slow ones are scaled by one common factor (all equal when
     they are all zero in ``kin``). Moving ``rho`` down from 1 (slow as fast as the slowest fast species) to
-    1e-12, the onset is the largest ``rho`` at which the growth supremum over ``k > 0`` changes sign: a coarse
-    scan (a decade a step) brackets it and brentq on ``ln rho`` refines it. With ``shape``/``size`` the
-    supremum is over the admissible modes of that domain, so the onset is where the first mode crosses.
+    1e-12, the onset is the largest ``rho`` at which the growth supremum over ``k > 0`` changes sign. A coarse
+    batched scan (a decade a step) brackets it; Newton's method on the neutral peak (growth and its
+    ``k``-derivative zero) refines it and a scan just above confirms it, with brentq on ``ln rho`` of the
+    supremum as the fallback. With ``shape``/``size`` the supremum is over the admissible modes of that domain,
+    so the onset is where the first mode crosses: stepping down from the line's onset a quarter decade at a
+    time brackets it and brentq on ``ln rho`` refines it.
 
     Returns None when no ratio in ``[1e-12, 1]`` destabilises the HSS, when the HSS is already unstable at
     ``rho = 1`` or well-mixed unstable, when there is no slow or no diffusing fast species, or (domain only)
@@ -770,8 +773,9 @@ def _fastest_mode(
 def linear_analysis(kin: Kinetics, hss: np.ndarray, shape: str, size: float | tuple[float, ...]) -> LinearVerdict:
     """Linear (Turing) verdict for the HSS ``hss`` of ``kin`` on the line and on the domain ``shape``/``size``.
 
-    The line is scanned in ``ln k`` (8 points a decade, three decades beyond the scales ``sqrt(|J| / D)``);
-    band edges are refined with brentq and the maximum by zooming on its bracket. The domain's modes are
+    The line is scanned in ``ln k`` (8 points a decade, three decades beyond the scales ``sqrt(|J| / D)``,
+    denser where eigenvalues collide); band edges are refined with brentq and the best local maxima by
+    zooming on their brackets. The domain's modes are
     listed up to 1.5 times the largest finite band edge or fastest ``k`` (at least the first nonzero mode).
     """
     jac = _jacobian_at(kin, hss)

@@ -6,7 +6,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import assume, event, given, settings
+from hypothesis import HealthCheck, assume, event, given, settings
 from hypothesis import strategies as st
 from scipy.optimize import brentq
 from scipy.special import jvp
@@ -453,3 +453,81 @@ def test_line_instability_without_spike_instability_three_species():
     verdict = linear_analysis(_spike_kinetics(jac, 1, eps), np.zeros(3), "interval", (1.0,))
     assert verdict.line_turing_unstable and not verdict.turing_unstable
     assert verdict.fastest_k**2 / eps == pytest.approx(1.0, rel=0.5)
+
+
+# ---------------------------------------------------------------------------------------------------------
+# Equivalence with brute force: dense scans over k and over the modes
+# ---------------------------------------------------------------------------------------------------------
+
+
+def _random_system(seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+    """Random 2- or 3-species Jacobian (a third of them mass-conserving), diffusion and slow split."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(2, 4))
+    jac = rng.uniform(-3.0, 3.0, (n, n))
+    cons = None
+    if rng.random() < 1 / 3:
+        w, u = np.ones(n), rng.uniform(0.2, 1.0, n)
+        jac = (np.eye(n) - np.outer(u, w) / (w @ u)) @ jac  # w @ jac == 0
+        cons = w[None]
+    diffusion = 10 ** rng.uniform(-2.0, 1.0, n)
+    slow = np.arange(n) < int(rng.integers(1, n))
+    return jac, diffusion, slow, cons
+
+
+def _dense_sup(jac: np.ndarray, diffusion: np.ndarray) -> float:
+    """Largest growth on 20 000 log-spaced k in [1e-4, 1e6] (below 1e-4 a conserved mode is round-off)."""
+    k = np.logspace(-4, 6, 20_000)
+    return float(growth_rates(jac, diffusion, k * k).max())
+
+
+@settings(max_examples=100, deadline=None)
+@given(seed=SEEDS)
+def test_verdict_matches_dense_scans(seed):
+    """The line and domain flags, the fastest growth and the critical ratio agree with dense brute force."""
+    jac, diffusion, slow, cons = _random_system(seed)
+    kin = linear_kinetics(jac, diffusion, slow, conservation=cons)
+    verdict = linear_analysis(kin, np.zeros(jac.shape[0]), "interval", (10.0,))
+    dense = _dense_sup(jac, diffusion)
+    assume(abs(dense) > 1e-6)
+    assert verdict.fastest_growth >= dense - 1e-12
+    assert verdict.fastest_growth == pytest.approx(dense, rel=1e-3, abs=1e-6)
+    assert verdict.line_turing_unstable is (verdict.well_mixed_stable and dense > 0)
+    modes = admissible_modes("interval", (10.0,), 1e4)
+    domain = float(growth_rates(jac, diffusion, modes.k2[1:]).max())
+    assume(abs(domain) > 1e-9)
+    assert verdict.domain_unstable is (domain > 0)
+
+
+def _scaled(diffusion: np.ndarray, slow: np.ndarray, rho: float) -> np.ndarray:
+    """Slow coefficients scaled together so that max(D_slow) / min(D_fast) = rho."""
+    return np.where(slow, rho * diffusion[~slow].min() * diffusion / diffusion[slow].max(), diffusion)
+
+
+# Only 12-34 % of the draws are well-mixed stable with an onset: the filtering is inherent, not a bad strategy.
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.filter_too_much])
+@given(seed=SEEDS, n=st.sampled_from([2, 3]), conserved=st.booleans())
+def test_critical_ratios_match_dense_scans(seed, n, conserved):
+    """Just below the critical ratios the line (domain) has an unstable k (mode), just above none."""
+    rng = np.random.default_rng(seed)
+    n_slow = int(rng.integers(1, n))
+    jac = _draw_jacobian(seed, n, n_slow)
+    cons = None
+    if conserved:
+        w, u = np.ones(n), rng.uniform(0.2, 1.0, n)
+        jac = (np.eye(n) - np.outer(u, w) / (w @ u)) @ jac  # w @ jac == 0
+        cons = w[None]
+    diffusion = 10 ** rng.uniform(-1.0, 1.0, n)
+    slow = np.arange(n) < n_slow
+    verdict = linear_analysis(linear_kinetics(jac, diffusion, slow, cons), np.zeros(n), "interval", (5.0,))
+    assume(verdict.well_mixed_stable and verdict.critical_ratio_line is not None)
+    rho = verdict.critical_ratio_line
+    assert _dense_sup(jac, _scaled(diffusion, slow, 0.97 * rho)) > 0
+    assert _dense_sup(jac, _scaled(diffusion, slow, 1.03 * rho)) <= 0
+    rho_domain = verdict.critical_ratio_domain
+    event("domain ratio found" if rho_domain is not None else "no domain ratio")
+    if rho_domain is not None:
+        assert rho_domain <= rho * (1 + 1e-9)
+        k2 = admissible_modes("interval", (5.0,), 1e5).k2[1:]
+        assert growth_rates(jac, _scaled(diffusion, slow, 0.97 * rho_domain), k2).max() > 0
+        assert growth_rates(jac, _scaled(diffusion, slow, 1.03 * rho_domain), k2).max() <= 0
