@@ -9,7 +9,7 @@ from harness.equilibria import Equilibrium, baseline_hss, equilibrium
 from harness.kinetics import Kinetics
 from harness.spike import REGIMES, local_eigenvalues, local_states, spike_analysis
 
-K0 = 0.067  # wave-pinning basal rate, with gamma = K = delta = 1 (Mori, Jilkine & Edelstein-Keshet 2008)
+K0 = 0.067  # wave-pinning basal rate, gamma = K = delta = 1 (Mori, Jilkine & Edelstein-Keshet 2008; from memory)
 
 
 def kinetics(f, jac, species, slow, conservation=None) -> Kinetics:
