@@ -493,8 +493,9 @@ def _fates(
     span, t0 = 20.0 / max(float(np.min(mags)), 1e-6 * float(np.max(mags)), 1e-12), 0.0
     y = starts[live].T.copy()
     with np.errstate(all="ignore"):
-        for _ in range(4):
-            if not live:
+        chunks = 0
+        for _ in range(4 + len(starts)):  # an escape ends a chunk early without using it up
+            if not live or chunks == 4:
                 break
             m = len(live)
             rows = (np.arange(loc.ns)[:, None, None] * m + np.arange(m)).repeat(loc.ns, axis=1)
@@ -530,8 +531,13 @@ def _fates(
             except ValueError:  # the event root search met a sign mismatch at round-off level: drop `settled`
                 sol = solve_ivp(rhs, (t0, t0 + span), y.ravel(), events=[leave], **opts)
             q = sol.y[:, -1].reshape(loc.ns, m)
-            gone = ~np.all(np.isfinite(q), axis=0) | np.any(q < lo_out[:, None] + 1e-9 * width[:, None], axis=0)
-            gone |= np.any(q > hi_out[:, None] - 1e-9 * width[:, None], axis=0) | (sol.status < 0)
+            if sol.status < 0 or not np.all(np.isfinite(q)):
+                y = q if np.all(np.isfinite(q)) else y
+                break  # the joint run failed: each goes on alone
+            edge = np.minimum((q - lo_out[:, None]) / width[:, None], (hi_out[:, None] - q) / width[:, None]).min(0)
+            gone = edge <= 1e-9
+            if sol.status == 1 and sol.t_events[0].size:
+                gone[int(np.argmin(edge))] = True
             keep = []
             for j, k in enumerate(live):
                 d = np.sqrt(np.sum(((q[:, j] - pts) / width) ** 2, axis=1)) if len(pts) else np.array([])
@@ -545,7 +551,8 @@ def _fates(
             live = [live[j] for j in keep]
             y = q[:, keep]
             t0 = sol.t[-1]
-            span = span if sol.status == 1 else 1.5 * span
+            if sol.status != 1:
+                chunks, span = chunks + 1, 1.5 * span
     for j, k in enumerate(live):
         out[k] = _fate(loc, y[:, j], attractors, others, rtol, radii[k])
     return out
