@@ -105,7 +105,7 @@ def test_cubic_box_limits_the_search():
     np.testing.assert_allclose([e.state[0] for e in found], [0.3, 1.0], atol=1e-12)
 
 
-def test_toggle_switch_all_five_or_three():
+def test_toggle_switch_three_then_one():
     """Toggle switch: the symmetric HSS solves u^3 + u - alpha = 0; for alpha > 2 two asymmetric ones
     u, v = (alpha -+ sqrt(alpha^2 - 4)) / 2 exist too (with uv = 1, u = alpha/(1 + v^2) becomes
     u^2 - alpha u + 1 = 0, derived here). They are stable; the symmetric one is then a saddle."""
