@@ -87,7 +87,8 @@ class SpikePrediction:
     sign : the pulse's sign, +1 or -1.
     threshold_up, threshold_down : least pulse height along ``+e`` / ``-e`` that leaves the HSS's basin
         in the local dynamics; None where every height up to the edge of the local box returns.
-    threshold : the one of the two for ``sign``.
+    threshold : the one of the two for ``sign``, where a pulse beyond it patterns; None where what lies beyond
+        is growth without bound (see ``unbounded_above``) or nothing.
     threshold_boundary : route 1, the distance along ``sign * e`` to an unstable local state on the ray
         (for one slow species, the nearest local root beyond the HSS), or None where that does not apply.
     threshold_ode : route 2, bisection on the height with trajectories of the local ODE, or None.
@@ -760,6 +761,7 @@ def _pulse_regime(loc: _Local, states, e: np.ndarray, sign: int, rtol: float, hi
     elif kind == "escaped":
         out.update(
             regime="no-pattern",
+            threshold=None,  # leaving the basin here is growth, not a pattern: no pulse patterns
             unbounded_above=ray.threshold if ray.unbounded is None else ray.unbounded,
             reason=f"spike-stable HSS; a pulse {word} above {ray.threshold:.6g} grows without bound in the "
             "local dynamics, which is not a pattern",

@@ -44,7 +44,7 @@ def test_sweep_grid_and_order():
     """`{ start, stop, num }` gives an inclusive linear grid; species keep file order."""
     case = load_case(DEMO)
     assert case.sweep.values[0] == pytest.approx(0.1)
-    assert case.sweep.values[-1] == pytest.approx(0.4)
+    assert case.sweep.values[-1] == pytest.approx(0.7)
     assert len(case.sweep.values) == 31
     assert case.species_names == ("a", "c")
 

@@ -331,13 +331,14 @@ def test_brusselator_spike_instability(b):
 
 def test_brusselator_local_roots_and_regimes():
     """At v* = b/a the local equation v* u^2 - (b + 1) u + a = 0 has roots a and a/b (derived). For b < 1
-    the upper one, a/b, is unstable and beyond it u blows up: no-pattern, threshold = unbounded_above =
-    a/b - a. For b > 1 the lower one is stable but upwards u blows up: unresolved, with the reason."""
+    the upper one, a/b, is unstable and beyond it u blows up: no-pattern, no threshold (growth is not a
+    pattern), unbounded_above = a/b - a. For b > 1 the lower one is stable but upwards u blows up: unresolved, with the reason."""
     a = 1.5
     low = spike_analysis(brusselator(a, 0.5), baseline_hss(brusselator(a, 0.5), [a, 0.5 / a]), ("u",))
     np.testing.assert_allclose(sorted(s.values[0] for s in low.local_states), [a, a / 0.5], rtol=1e-10)
     assert low.regime == "no-pattern"
-    assert low.threshold == pytest.approx(a / 0.5 - a, rel=1e-6)
+    assert low.threshold is None
+    assert low.threshold_up == pytest.approx(a / 0.5 - a, rel=1e-6)
     assert low.unbounded_above == pytest.approx(a / 0.5 - a, rel=1e-6)
     high = spike_analysis(brusselator(a, 2.0), baseline_hss(brusselator(a, 2.0), [a, 2.0 / a]), ("u",))
     assert high.regime == "unresolved" and "without bound" in high.reason
