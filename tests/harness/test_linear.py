@@ -355,6 +355,26 @@ def test_domain_onset_is_where_first_mode_crosses():
     assert np.sum(rates > -1e-6) == 1
 
 
+def test_huge_domain_is_treated_as_the_line():
+    """A domain with more than 5000 modes below the band's top takes the line's verdict (documented limit)."""
+    a, b = 2.0, 3.0
+    kin = fun_brusselator(a, b, 1.0, 10.0)
+    verdict = linear_analysis(kin, sol_brusselator(a, b), "interval", (1e5,))
+    assert verdict.domain_unstable and verdict.turing_unstable
+    assert verdict.mode_label is None and verdict.mode_k == verdict.fastest_k
+
+
+def test_critical_ratio_function_matches_verdict():
+    """critical_ratio without and with a domain gives the verdict's line and domain ratios."""
+    a, b = 2.0, 3.0
+    kin = fun_brusselator(a, b, 1.0, 10.0)
+    hss = sol_brusselator(a, b)
+    verdict = linear_analysis(kin, hss, "disk", (3.0,))
+    assert critical_ratio(kin, hss) == verdict.critical_ratio_line
+    assert critical_ratio(kin, hss, "disk", 3.0) == verdict.critical_ratio_domain
+    assert verdict.critical_ratio_domain < verdict.critical_ratio_line
+
+
 def test_immobile_activator_band_never_ends():
     """With D_u = 0 and f_u > 0 growth tends to f_u as k -> inf: band to inf, fastest k = inf."""
     jac = np.array([[0.5, 1.0], [-2.0, -1.5]])
