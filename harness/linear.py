@@ -235,7 +235,7 @@ class _Shape:
     count: Callable[[tuple[float, ...], float], float]
 
 
-MODE_SHAPES: dict[str, _Shape] = {
+_SHAPES: dict[str, _Shape] = {
     "interval": _Shape(1, _interval_modes, lambda s: math.pi / s[0], lambda s, k: s[0] * k / math.pi + 2),
     "rectangle": _Shape(
         2,
@@ -252,11 +252,15 @@ MODE_SHAPES: dict[str, _Shape] = {
 }
 
 
+MODE_SHAPES: tuple[str, ...] = tuple(_SHAPES)
+"""Domain shapes with known no-flux modes."""
+
+
 def _check_domain(shape: str, size: float | tuple[float, ...]) -> tuple[_Shape, tuple[float, ...]]:
-    if shape not in MODE_SHAPES:
-        msg = f"`shape` must be one of {sorted(MODE_SHAPES)}, got {shape!r}."
+    if shape not in _SHAPES:
+        msg = f"`shape` must be one of {sorted(_SHAPES)}, got {shape!r}."
         raise ValueError(msg)
-    spec = MODE_SHAPES[shape]
+    spec = _SHAPES[shape]
     sizes = tuple(float(v) for v in np.atleast_1d(np.asarray(size, dtype=float)))
     if len(sizes) != spec.size_len or not all(math.isfinite(v) and v > 0 for v in sizes):
         msg = f"`size` of a {shape} must be {spec.size_len} positive finite length(s), got {size!r}."
@@ -607,7 +611,7 @@ def _critical_domain(
     Steps down from the line's onset a quarter decade at a time; at the first ratio where a mode inside the
     line's band is unstable, the modes up to that band's top are fixed and the crossing is bracketed.
     """
-    spec = MODE_SHAPES[shape]
+    spec = _SHAPES[shape]
     k1 = spec.first_k(size)
     step = math.log(10.0) / _DOMAIN_STEPS_PER_DECADE
     t_prev = math.log(rho_line)
@@ -755,7 +759,7 @@ def _fastest_mode(
     jac: np.ndarray, diffusion: np.ndarray, line: _Line, shape: str, size: tuple[float, ...]
 ) -> tuple[bool, tuple[int, ...] | None, float, float]:
     """Whether an admissible ``k > 0`` mode grows, and the fastest such mode ``(label, k, growth)``."""
-    spec = MODE_SHAPES[shape]
+    spec = _SHAPES[shape]
     top_infinite = bool(line.bands) and math.isinf(line.bands[-1][1])
     if math.isinf(line.fastest_k):
         return top_infinite or line.fastest_growth > 0, None, math.inf, line.fastest_growth

@@ -36,7 +36,7 @@ def linear_kinetics(jac, diffusion, slow, conservation=None, ustar=None) -> Kine
 
 
 def fun_brusselator(a: float, b: float, d_u: float, d_v: float) -> Kinetics:
-    """Brusselator ``u' = a - (b + 1) u + u^2 v``, ``v' = b u - u^2 v`` with ``u`` slow."""
+    """Brusselator ``u' = a - (b + 1) u + u^2 v``, ``v' = b u - u^2 v``, ``u`` slow (Prigogine & Lefever 1968)."""
 
     def reaction(s):
         u, v = s
@@ -55,7 +55,7 @@ def sol_brusselator(a: float, b: float) -> np.ndarray:
 
 
 def fun_schnakenberg(a: float, b: float, d: float) -> Kinetics:
-    """Schnakenberg ``u' = a - u + u^2 v``, ``v' = b - u^2 v`` with ``D_u = 1``, ``D_v = d`` (u slow)."""
+    """Schnakenberg ``u' = a - u + u^2 v``, ``v' = b - u^2 v``, ``D_u = 1``, ``D_v = d``, u slow (Schnakenberg 1979)."""
 
     def reaction(s):
         u, v = s
@@ -81,7 +81,7 @@ def murray_conditions(jac: np.ndarray, d: float) -> bool:
 
 
 def murray_critical(jac: np.ndarray) -> tuple[float, float]:
-    """Critical ``d_c`` and ``k_c^2`` (Murray 2003, Mathematical Biology II, ch. 2).
+    """Critical ``d_c`` and ``k_c^2`` (Murray 2003, Mathematical Biology II, ch. 2, with his scale gamma = 1).
 
     ``d_c`` is the root of ``fu^2 d^2 + 2 (2 fv gu - fu gv) d + gv^2 = 0`` with ``d fu + gv > 0``, and
     ``k_c^2 = (d_c fu + gv) / (2 d_c)``.
@@ -186,7 +186,7 @@ def test_activator_fast_gives_no_ratio():
 
 
 def test_brusselator_onset_and_hopf():
-    """Line growth changes sign at b_c = (1 + a sqrt(Du/Dv))^2, well-mixed stability at 1 + a^2 (Murray 2003)."""
+    """Line growth changes sign at b_c = (1 + a sqrt(Du/Dv))^2, Hopf at 1 + a^2 (Murray 2003; common practice)."""
     a, d_u, d_v = 2.0, 1.0, 10.0
     b_c = (1 + a * math.sqrt(d_u / d_v)) ** 2
 
@@ -240,6 +240,16 @@ def test_schnakenberg_points_cover_both_sides():
     assert flags == {True, False}
     jac = fun_schnakenberg(0.05, 0.5, 30.0).jac(sol_schnakenberg(0.05, 0.5))
     assert np.trace(jac) > 0
+
+
+@pytest.mark.parametrize("b", [1.5, 2.5, 2.9, 3.0, 3.5, 4.5])
+def test_ratio_and_verdict_agree_on_brusselator(b):
+    """The case's own ratio lies below the line's critical ratio exactly when the line is Turing unstable."""
+    a, d_u, d_v = 2.0, 1.0, 8.0
+    verdict = linear_analysis(fun_brusselator(a, b, d_u, d_v), sol_brusselator(a, b), "interval", (40.0,))
+    rho_c = verdict.critical_ratio_line
+    assert verdict.ratio == pytest.approx(d_u / d_v)
+    assert verdict.line_turing_unstable is (rho_c is not None and verdict.ratio < rho_c)
 
 
 def test_mass_conserved_long_wave_band_and_ratios():
