@@ -6,9 +6,9 @@ diagonal of diffusion coefficients). The *growth rate* at ``k`` is the largest r
 positive means the mode grows (unstable), negative that it decays. At ``k = 0`` every linear conservation law
 (``Kinetics.conservation``) contributes a structural zero eigenvalue that only moves the HSS along its family of
 totals; those are left out, exactly as in `reduced_eigenvalues`, so the ``k = 0`` growth is the well-mixed
-stability of the chosen member. For ``k > 0`` the same directions carry genuine eigenvalues (about
-``-k^2 x`` an effective diffusion) and are kept: a mass-conserved model may be unstable at arbitrarily long
-wavelengths. Wavenumbers are in inverse length units of the case, wavelengths are ``2 pi / k``; on a bounded
+stability of the chosen member. For ``k > 0`` the same directions carry genuine eigenvalues (about ``-k^2``
+times an effective diffusion coefficient) and are kept: a mass-conserved model may be unstable at arbitrarily
+long wavelengths. Wavenumbers are in inverse length units of the case, wavelengths are ``2 pi / k``; on a bounded
 domain with no-flux boundaries only the admissible (Neumann) modes count.
 """
 
@@ -84,14 +84,19 @@ def _check_k2(k2: np.ndarray) -> np.ndarray:
     return k2
 
 
-def _leading(jac: np.ndarray, shifts: np.ndarray) -> np.ndarray:
-    """Largest real part of the eigenvalues of ``jac - diag(shift)`` for each row ``shift`` of ``shifts``."""
+def _shifted(jac: np.ndarray, shifts: np.ndarray) -> np.ndarray:
+    """The matrices ``jac - diag(shift)``, one for each row ``shift`` of ``shifts (..., n)``."""
     n = jac.shape[0]
     mats = np.empty((*shifts.shape[:-1], n, n))
     mats[...] = jac
     idx = np.arange(n)
     mats[..., idx, idx] -= shifts
-    return np.linalg.eigvals(mats).real.max(axis=-1)
+    return mats
+
+
+def _leading(jac: np.ndarray, shifts: np.ndarray) -> np.ndarray:
+    """Largest real part of the eigenvalues of ``jac - diag(shift)`` for each row ``shift`` of ``shifts``."""
+    return np.linalg.eigvals(_shifted(jac, shifts)).real.max(axis=-1)
 
 
 def _has_conservation(conservation: np.ndarray | None) -> bool:
@@ -135,11 +140,7 @@ def dispersion(
     k2 = _check_k2(k2)
     flat = k2.ravel()
     n = jac.shape[0]
-    mats = np.empty((flat.size, n, n))
-    mats[...] = jac
-    idx = np.arange(n)
-    mats[:, idx, idx] -= flat[:, None] * diffusion
-    eig = np.linalg.eigvals(mats).astype(complex)
+    eig = np.linalg.eigvals(_shifted(jac, flat[:, None] * diffusion)).astype(complex)
     zero = flat == 0
     if zero.any() and _has_conservation(conservation):
         red = reduced_eigenvalues(jac, conservation).astype(complex)
@@ -279,7 +280,7 @@ def admissible_modes(shape: str, size: float | tuple[float, ...], k2_max: float)
         msg = f"`k2_max` must be finite and non-negative, got {k2_max!r}."
         raise ValueError(msg)
     k2, labels, mult = spec.build(sizes, float(k2_max))
-    order = np.lexsort((np.arange(k2.size), k2))
+    order = np.argsort(k2, kind="stable")
     return Modes(shape, k2[order], tuple(labels[i] for i in order), mult[order])
 
 
@@ -307,15 +308,6 @@ def _scan_grid(lo: float, hi: float) -> np.ndarray:
     return np.linspace(lo, hi, num)
 
 
-def _eigvals_k(jac: np.ndarray, diffusion: np.ndarray, x: np.ndarray) -> np.ndarray:
-    n = jac.shape[0]
-    mats = np.empty((x.size, n, n))
-    mats[...] = jac
-    idx = np.arange(n)
-    mats[:, idx, idx] -= np.exp(2.0 * x)[:, None] * diffusion
-    return np.linalg.eigvals(mats)
-
-
 def _scan(jac: np.ndarray, diffusion: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Growth on the log-spaced scan, densified between points where two eigenvalues collide.
 
@@ -324,7 +316,7 @@ def _scan(jac: np.ndarray, diffusion: np.ndarray) -> tuple[np.ndarray, np.ndarra
     differs, ``_FINE_POINTS`` more points are added.
     """
     x = _scan_grid(*_log_k_range(jac, diffusion))
-    eig = _eigvals_k(jac, diffusion, x)
+    eig = np.linalg.eigvals(_shifted(jac, np.exp(2.0 * x)[:, None] * diffusion))
     y = eig.real.max(axis=-1)
     n_real = np.sum(eig.imag == 0, axis=-1)
     changes = np.flatnonzero(np.diff(n_real))
