@@ -119,6 +119,9 @@ class SolverSpec:
     rtol: float = 1e-4
     atol: float = 1e-8
     method: str = "fv"
+    settle_tol: float = 1e-6
+    settle_window: float = 50.0
+    snapshots: int = 101
 
 
 @dataclass(frozen=True)
@@ -428,7 +431,7 @@ def _noise(r: _Reader) -> NoiseSpec:
 
 
 def _solver(r: _Reader) -> SolverSpec:
-    known = ("cells_1d", "cells_2d", "t_end", "rtol", "atol", "method")
+    known = ("cells_1d", "cells_2d", "t_end", "rtol", "atol", "method", "settle_tol", "settle_window", "snapshots")
     r.warn_unknown(known)
     return SolverSpec(
         cells_1d=r.integer("cells_1d", 400, minimum=4),
@@ -437,4 +440,7 @@ def _solver(r: _Reader) -> SolverSpec:
         rtol=r.number("rtol", 1e-4, positive=True),
         atol=r.number("atol", 1e-8, positive=True),
         method=r.string("method", "fv", choices=("fv", "p1")),
+        settle_tol=r.number("settle_tol", 1e-6, positive=True),
+        settle_window=r.number("settle_window", 50.0, positive=True),
+        snapshots=r.integer("snapshots", 101, minimum=2),
     )

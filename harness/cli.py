@@ -41,6 +41,13 @@ def _parser() -> argparse.ArgumentParser:
     _case_args(p)
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
     p.add_argument("--plot", metavar="FILE", help="draw states against the sweep parameter (PNG or PDF)")
+    p = sub.add_parser("simulate", help="one full-PDE run from the baseline HSS plus a pulse or noise")
+    _case_args(p)
+    p.add_argument("--start", required=True, metavar="pulse:HEIGHT|noise:AMPLITUDE", help="how the run starts")
+    p.add_argument("--dim", type=int, choices=(1, 2), default=1, help="spatial dimension (default 1)")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+    p.add_argument("--save", metavar="FILE", help="write coordinates, snapshots and the outcome to HDF5")
+    p.add_argument("--plot", metavar="FILE", help="space-time picture (1D) or final state (2D), PNG or PDF")
     return parser
 
 
@@ -79,6 +86,46 @@ def _predict(args: argparse.Namespace) -> int:
 def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
     """Warnings reach the user as one line on stderr, without a source location."""
     sys.stderr.write(f"rdcheck: warning: {message}\n")
+
+
+def _single_point(case, path: str) -> dict[str, float]:
+    """The one parameter point of a call that must run at a single point (`--set` the sweep parameter)."""
+    from .errors import InputError
+
+    points = case.points()
+    if len(points) != 1:
+        name = case.sweep.parameter
+        msg = f"{path}: `sweep.parameter`: this command runs one point; give `--set {name}=VALUE`"
+        raise InputError(msg)
+    return points[0]
+
+
+@command("simulate")
+def _simulate(args: argparse.Namespace) -> int:
+    from .simulate import ProgressBar, parse_start, simulate
+
+    start = parse_start(args.start)
+    case, model = _load(args)
+    params = _single_point(case, args.case)
+    result = simulate(case, model, params, start, dim=args.dim, observers=(ProgressBar(start.label()),))
+    if args.save:
+        from .output import save_simulation
+
+        save_simulation(args.save, model, result)
+    if args.plot:
+        from .figures import plot_simulation
+
+        plot_simulation(args.plot, model, result)
+    if args.json:
+        json.dump(result.to_json(model.species), sys.stdout, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        o = result.outcome
+        drift = "-" if result.mass_drift is None else f"{result.mass_drift:.2e}"
+        sys.stdout.write(f"{o.outcome}: {o.reason}\n  t_final = {result.run.t_final:.6g}, steps = "
+                         f"{result.run.nsteps}, mass drift = {drift}, {result.dim}D {result.shape} with "
+                         f"{result.coords.shape[0]} nodes, {result.wall:.2f} s\n")
+    return 0
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -7,7 +7,7 @@ from contextlib import contextmanager
 
 import numpy as np
 
-__all__ = ["BRANCH_COLOURS", "REGIME_SHADES", "plot_prediction", "rdcheck_style"]
+__all__ = ["BRANCH_COLOURS", "FIELD_MAP", "REGIME_SHADES", "plot_prediction", "plot_simulation", "rdcheck_style"]
 
 #: Branch kinds; hues chosen to stay distinct under the common colour-vision deficiencies.
 BRANCH_COLOURS = {"global": "#1f5f8b", "local": "#c8621b", "periodic": "#6b4c9a"}
@@ -20,6 +20,9 @@ REGIME_SHADES = {
     "self-oscillating": "#ecd3e4",
     "unresolved": "#ffffff",
 }
+
+#: Sequential colour map for concentration fields (perceptually uniform, readable in grey).
+FIELD_MAP = "cividis"
 
 _STYLE = {
     "figure.figsize": (6.4, 4.0),
@@ -105,5 +108,48 @@ def plot_prediction(case, model, points, path: str) -> None:
         ax.set_ylabel(f"{model.species[slow_index]} (slow)")
         ax.set_title(f"{model.name}: spike-limit states and regimes")
         ax.legend(loc="center left", bbox_to_anchor=(1.01, 0.5), fontsize=8)
+        fig.savefig(path)
+        plt.close(fig)
+
+
+def _field_axes(ax, fig, result, values: np.ndarray, title: str) -> None:
+    """One 2D field on its nodes: an image on uniform grids, a triangulated colour plot otherwise."""
+    import matplotlib.tri as mtri
+
+    x, y = result.coords[:, 0], result.coords[:, 1]
+    tri = mtri.Triangulation(x, y)
+    art = ax.tripcolor(tri, values, shading="gouraud", cmap=FIELD_MAP)
+    ax.set_aspect("equal")
+    ax.set_title(title)
+    ax.set_axis_off()
+    fig.colorbar(art, ax=ax, shrink=0.8)
+
+
+def plot_simulation(path: str, model, result) -> None:
+    """A space-time picture of every species (1D), or the final state of every species (2D)."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    n = len(model.species)
+    label = f"{model.name}, {result.start.label()}: {result.outcome.outcome}"
+    with rdcheck_style():
+        fig, axes = plt.subplots(1, n, figsize=(3.4 * n, 3.2), squeeze=False)
+        for i, ax in enumerate(axes[0]):
+            name = model.species[i]
+            if result.dim == 1:
+                x = result.coords[:, 0]
+                order = np.argsort(x)
+                t = result.run.snap_t
+                field = result.run.snap_u[:, i, order]
+                art = ax.pcolormesh(x[order], t, field, shading="nearest", cmap=FIELD_MAP)
+                ax.set_xlabel("x")
+                ax.set_ylabel("t" if i == 0 else "")
+                ax.set_title(name)
+                fig.colorbar(art, ax=ax, shrink=0.8)
+            else:
+                _field_axes(ax, fig, result, result.run.u[i], f"{name} at t = {result.run.t_final:.4g}")
+        fig.suptitle(label, x=0.01, ha="left", fontsize=10, fontweight="bold")
         fig.savefig(path)
         plt.close(fig)

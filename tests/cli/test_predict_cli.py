@@ -98,7 +98,8 @@ def test_bad_input_exit_two_one_line(capsys, argv, match):
 def test_forbidden_expression_exit_two_without_running(tmp_path):
     """A case whose reaction tries to run code exits 2 through the console script and runs nothing."""
     marker = tmp_path / "ran"
-    text = DEMO.read_text().replace('reaction = "s - d*c', f'reaction = "__import__(\'os\').mkdir(\'{marker}\') + s - d*c')
+    evil = f"__import__('os').mkdir('{marker}') + s - d*c"
+    text = DEMO.read_text().replace('reaction = "s - d*c', f'reaction = "{evil}')
     case = tmp_path / "evil.toml"
     case.write_text(text)
     proc = subprocess.run([sys.executable, "-m", "harness.cli", "predict", str(case)], capture_output=True,
