@@ -28,7 +28,8 @@ class RunTask:
     """One full-PDE run: which case (file + overrides), which point, which start, which grid.
 
     ``purpose`` says why the plan asked for it (``noise``, ``pulse``, ``threshold``, ``boundary``,
-    ``refine``); it is not part of the key, so a run asked for twice is run once.
+    ``refine``); it is not part of the key, so a run asked for twice is run once. ``hss`` is the baseline
+    HSS the run starts from (the branch the prediction followed); None means the one nearest the guess.
     """
 
     case_path: str
@@ -39,6 +40,7 @@ class RunTask:
     dim: int
     resolution: int
     purpose: str = "pulse"
+    hss: tuple[float, ...] | None = None
 
     @property
     def param_dict(self) -> dict[str, float]:
@@ -50,13 +52,16 @@ class RunTask:
         d = asdict(self)
         d["overrides"] = list(self.overrides)
         d["params"] = dict(self.params)
+        d["hss"] = None if self.hss is None else list(self.hss)
         return d
 
     @classmethod
     def from_dict(cls, d: dict) -> RunTask:
         """Inverse of :meth:`to_dict`."""
+        hss = d.get("hss")
         return cls(d["case_path"], tuple(d["overrides"]), tuple(sorted(d["params"].items())), d["start_kind"],
-                   float(d["start_value"]), int(d["dim"]), int(d["resolution"]), d.get("purpose", "pulse"))
+                   float(d["start_value"]), int(d["dim"]), int(d["resolution"]), d.get("purpose", "pulse"),
+                   None if hss is None else tuple(float(v) for v in hss))
 
 
 @dataclass(frozen=True)
@@ -114,6 +119,7 @@ def run_key(case, model, task: RunTask) -> str:
         "params": {k: float(v) for k, v in sorted(task.params)},
         "guess": {k: float(v) for k, v in sorted(case.guess.items())},
         "start": [task.start_kind, float(task.start_value)],
+        "hss": None if task.hss is None else [float(f"{v:.12g}") for v in task.hss],
         "pulse": None if case.pulse is None else asdict(case.pulse),
         "noise": None if case.noise is None else asdict(case.noise),
         "domain": asdict(case.domain.for_dim(task.dim)),
@@ -172,13 +178,21 @@ def run_task(task: RunTask, wall_limit: float | None = None) -> RunRecord:
     With ``wall_limit`` (seconds) a run still going after that long is stopped and classified from what it
     reached, which without a verdict is `unsettled` (never guessed).
     """
+    from .errors import InputError
     from .simulate import Start, simulate
 
     case, model = _load(task.case_path, task.overrides)
     key = run_key(case, model, task)
     observers = () if wall_limit is None else (WallClock(wall_limit),)
-    sim = simulate(case, model, task.param_dict, Start(task.start_kind, task.start_value), dim=task.dim,
-                   resolution=task.resolution, observers=observers)
+    try:
+        sim = simulate(case, model, task.param_dict, Start(task.start_kind, task.start_value), dim=task.dim,
+                       resolution=task.resolution, observers=observers, hss=task.hss)
+    except InputError as exc:
+        if "`--start" not in str(exc):
+            raise
+        return RunRecord(key=key, task=task, outcome="unsettled", reason="the start is not admissible",
+                         t_final=0.0, mass_drift=None, status="failed", steps=0, wall=0.0,
+                         error=f"start not admissible: {exc}")
     o = sim.outcome
     return RunRecord(
         key=key, task=task, outcome=o.outcome, reason=o.reason, t_final=float(sim.run.t_final),
