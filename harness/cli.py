@@ -48,6 +48,11 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
     p.add_argument("--save", metavar="FILE", help="write coordinates, snapshots and the outcome to HDF5")
     p.add_argument("--plot", metavar="FILE", help="space-time picture (1D) or final state (2D), PNG or PDF")
+    p = sub.add_parser("threshold", help="the pulse height really needed at one point (bisection on the PDE)")
+    _case_args(p)
+    p.add_argument("--dim", type=int, choices=(1, 2), default=1, help="spatial dimension (default 1)")
+    p.add_argument("--tolerance", type=float, default=0.02, help="relative bracket tolerance (default 0.02)")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
     return parser
 
 
@@ -125,6 +130,35 @@ def _simulate(args: argparse.Namespace) -> int:
         sys.stdout.write(f"{o.outcome}: {o.reason}\n  t_final = {result.run.t_final:.6g}, steps = "
                          f"{result.run.nsteps}, mass drift = {drift}, {result.dim}D {result.shape} with "
                          f"{result.coords.shape[0]} nodes, {result.wall:.2f} s\n")
+    return 0
+
+
+@command("threshold")
+def _threshold(args: argparse.Namespace) -> int:
+    from .simulate import ProgressBar
+    from .validate import measure_threshold
+
+    if not 0 < args.tolerance < 1:
+        from .errors import InputError
+
+        msg = f"`--tolerance`: expected a number in (0, 1), got {args.tolerance!r}"
+        raise InputError(msg)
+    case, model = _load(args)
+    params = _single_point(case, args.case)
+    result = measure_threshold(case, model, params, dim=args.dim, tol=args.tolerance,
+                               observers_for=lambda label: (ProgressBar(label),))
+    if args.json:
+        json.dump(result, sys.stdout, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        def fmt(x):
+            return "-" if x is None else f"{x:.6g}"
+
+        sys.stdout.write(f"threshold ({result['dim']}D, {result['resolution']} cells): did not pattern at "
+                         f"{fmt(result['low'])}, patterned at {fmt(result['high'])} ({result['status']}); "
+                         f"spike-limit prediction {fmt(result['lpa'])}\n")
+        for r in result["runs"]:
+            sys.stdout.write(f"  pulse {r['height']:.6g}: {r['outcome']}\n")
     return 0
 
 

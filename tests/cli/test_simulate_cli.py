@@ -80,3 +80,14 @@ def test_noise_start_statistics_do_not_depend_on_resolution(capsys, tmp_path):
         rms.append(float(np.sqrt(np.mean((a0 - a0.mean()) ** 2))))
     capsys.readouterr()
     assert rms[0] == pytest.approx(1e-3, rel=0.05) and rms[1] == pytest.approx(1e-3, rel=0.05)
+
+
+def test_threshold_command_brackets_and_names_lpa(capsys):
+    """`rdcheck threshold --json`: an honest bracket (low did not pattern, high did) and the LPA value."""
+    out = _json(capsys, "threshold", DEMO, "--set", "s=0.24", "--set", "solver.cells_1d=100", "--json")
+    assert {"low", "high", "lpa"} <= set(out)
+    assert out["status"] == "bracketed"
+    assert out["low"] < out["high"] <= out["low"] * 1.03
+    outcomes = {r["height"]: r["outcome"] for r in out["runs"]}
+    assert outcomes[out["low"]] == "baseline" and outcomes[out["high"]] == "stationary-pattern"
+    assert out["lpa"] == pytest.approx(0.2362, rel=1e-3)

@@ -332,7 +332,8 @@ def test_brusselator_spike_instability(b):
 def test_brusselator_local_roots_and_regimes():
     """At v* = b/a the local equation v* u^2 - (b + 1) u + a = 0 has roots a and a/b (derived). For b < 1
     the upper one, a/b, is unstable and beyond it u blows up: no-pattern, no threshold (growth is not a
-    pattern), unbounded_above = a/b - a. For b > 1 the lower one is stable but upwards u blows up: unresolved, with the reason."""
+    pattern), unbounded_above = a/b - a. For b > 1 the lower one is stable but upwards u blows up: unresolved,
+    with the reason."""
     a = 1.5
     low = spike_analysis(brusselator(a, 0.5), baseline_hss(brusselator(a, 0.5), [a, 0.5 / a]), ("u",))
     np.testing.assert_allclose(sorted(s.values[0] for s in low.local_states), [a, a / 0.5], rtol=1e-10)
