@@ -53,6 +53,31 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--dim", type=int, choices=(1, 2), default=1, help="spatial dimension (default 1)")
     p.add_argument("--tolerance", type=float, default=0.02, help="relative bracket tolerance (default 0.02)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+    p = sub.add_parser("validate", help="the whole study: predictions against full-PDE runs, into a store")
+    _case_args(p)
+    p.add_argument("--store", metavar="FILE", help="HDF5 store (default: out/<case name>.h5); rerun to resume")
+    where = p.add_mutually_exclusive_group()
+    where.add_argument("--workers", type=int, metavar="N", help="local worker processes (default: all cores)")
+    where.add_argument("--scheduler", metavar="ADDRESS", help="run on an existing Dask cluster")
+    p.add_argument("--shard", metavar="K/N", help="run the K-th of N deterministic slices (job arrays)")
+    p.add_argument("--quick", action="store_true", help="coarse grids, 1D only, at most 11 sweep points")
+    p.add_argument("--dims", default="1,2", metavar="1,2", help="dimensions to run (default 1,2)")
+    p.add_argument("--every-2d", type=int, default=3, metavar="K", help="2D runs on every K-th point (default 3)")
+    p.add_argument("--tolerance", type=float, default=0.02, help="relative threshold bracket (default 0.02)")
+    p.add_argument("--wall-limit", type=float, metavar="SECONDS", help="per-run wall-time limit")
+
+    p = sub.add_parser("report", help="agreement tables and figures from one or more stores")
+    p.add_argument("stores", nargs="+", metavar="STORE", help="store file(s); several are merged")
+    p.add_argument("--out", default="report", metavar="DIR", help="output folder (default: report)")
+    p.add_argument("--format", default="md,csv,tex", help="tables to write (default md,csv,tex)")
+
+    p = sub.add_parser("compare", help="exit 1 where a regime, an outcome or a threshold moved")
+    p.add_argument("baseline", metavar="BASELINE", help="store of the reference run")
+    p.add_argument("current", metavar="CURRENT", help="store of the new run")
+
+    p = sub.add_parser("merge", help="merge shard stores into one")
+    p.add_argument("stores", nargs="+", metavar="STORE", help="shard stores")
+    p.add_argument("--out", required=True, metavar="FILE", help="merged store")
     return parser
 
 
@@ -159,6 +184,77 @@ def _threshold(args: argparse.Namespace) -> int:
                          f"spike-limit prediction {fmt(result['lpa'])}\n")
         for r in result["runs"]:
             sys.stdout.write(f"  pulse {r['height']:.6g}: {r['outcome']}\n")
+    return 0
+
+
+def _int_list(text: str, option: str, allowed: tuple[int, ...]) -> tuple[int, ...]:
+    from .errors import InputError
+
+    try:
+        values = tuple(int(v) for v in text.split(","))
+    except ValueError:
+        values = ()
+    if not values or any(v not in allowed for v in values):
+        msg = f"`{option}`: expected a comma-separated list of {', '.join(map(str, allowed))}, got {text!r}"
+        raise InputError(msg)
+    return tuple(sorted(set(values)))
+
+
+@command("validate")
+def _validate(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from .errors import InputError
+    from .validate import ValidateOptions, parse_shard, validate
+
+    dims = _int_list(args.dims, "--dims", (1, 2))
+    if args.workers is not None and args.workers < 0:
+        msg = f"`--workers`: expected an integer >= 0, got {args.workers}"
+        raise InputError(msg)
+    if not 0 < args.tolerance < 1:
+        msg = f"`--tolerance`: expected a number in (0, 1), got {args.tolerance!r}"
+        raise InputError(msg)
+    if args.every_2d < 1:
+        msg = f"`--every-2d`: expected an integer >= 1, got {args.every_2d}"
+        raise InputError(msg)
+    case, _ = _load(args)
+    store = args.store or str(Path("out") / f"{Path(args.case).stem}.h5")
+    Path(store).parent.mkdir(parents=True, exist_ok=True)
+    options = ValidateOptions(store=store, dims=dims, every_2d=args.every_2d, quick=args.quick,
+                              tolerance=args.tolerance, workers=args.workers, scheduler=args.scheduler,
+                              shard=parse_shard(args.shard), wall_limit=args.wall_limit)
+    study = validate(args.case, args.overrides, options)
+    runs = sum(len(r.get("pulses", [])) + 1 for p in study["points"] for r in p["runs"].values())
+    sys.stdout.write(f"validated {len(study['points'])} sweep points ({runs} planned runs and searches) "
+                     f"into {store}; next: rdcheck report {store}\n")
+    return 0
+
+
+@command("report")
+def _report(args: argparse.Namespace) -> int:
+    from .report import report_store
+
+    formats = tuple(f.strip() for f in args.format.split(",") if f.strip())
+    written = report_store(args.stores, args.out, formats)
+    sys.stdout.write(f"wrote {len(written)} files into {args.out}\n")
+    return 0
+
+
+@command("compare")
+def _compare(args: argparse.Namespace) -> int:
+    from .compare import compare_stores
+
+    text, code = compare_stores(args.baseline, args.current)
+    sys.stdout.write(text if text.endswith("\n") else text + "\n")
+    return code
+
+
+@command("merge")
+def _merge(args: argparse.Namespace) -> int:
+    from .store import merge_stores
+
+    merge_stores(args.stores, args.out)
+    sys.stdout.write(f"merged {len(args.stores)} stores into {args.out}\n")
     return 0
 
 
