@@ -630,7 +630,9 @@ class RunResult:
     history : one row per accepted step (plus the start).
     snap_t, snap_u : ``(k,)`` and ``(k, n, m)`` snapshots at the requested times up to ``t_final``; a run
         that ended before its last requested time also gets its final state as a last snapshot.
-    nsteps, nrejected, nfev, njev, nlu : work counters (``nfev`` counts every right-hand-side evaluation).
+    nsteps, nrejected, nfev, njev, nlu : work counters (``nfev`` counts every right-hand-side evaluation,
+        including the one per step that the History rate costs on the scipy route; scipy's BDF does not
+        report rejections, so ``nrejected`` is 0 there).
     """
 
     t_final: float
@@ -742,8 +744,9 @@ def integrate(
     observers : objects with ``initialize(state, info)``, ``handle(state, t)`` (each accepted step) and
         ``finalize(info)``; a `StopIteration` (e.g. `StopRun`) raised by ``handle`` ends the run.
     bounds : largest ``|u|`` allowed before the run counts as diverged; default ``1e6 * max(1, max|u0|)``.
-    **options : passed to the stepper (`RosenbrockW`: ``backend``, ``first_step``, ``max_step``, ``jac_every``;
-        BDF: ``first_step``, ``max_step``).
+    **options : passed to the stepper (`RosenbrockW`: ``scheme``, ``backend``, ``backend_options``,
+        ``first_step``, ``max_step``, ``fixed_step``, ``jac_every``, ``rest_rate``; BDF: ``first_step``,
+        ``max_step``).
 
     Returns
     -------

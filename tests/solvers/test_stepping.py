@@ -351,3 +351,22 @@ def test_jacobian_matches_finite_differences(rng):
                           for e in np.eye(y.size)])
     np.testing.assert_allclose(jac, fd, atol=1e-6)
     assert np.all(system.jac_sparsity.toarray()[np.abs(fd) > 1e-9] == 1)
+
+
+def test_settle_rule_needs_window_and_steps():
+    """A dip of the rate shorter than the window, or too few steps, does not settle; the tracker agrees."""
+    rule = SettleRule(tol=1e-6, window=10.0, min_steps=4)
+    t = np.linspace(0.0, 30.0, 61)
+    rate = np.where((t > 12.0) & (t < 20.0), 1e-8, 1e-3)  # still for 8 < 10 time units, then moving again
+    assert not rule.settled(t, rate, rtol=1e-8)
+    still = np.where(t > 12.0, 1e-8, 1e-3)
+    assert rule.settled(t, still, rtol=1e-8)
+    tracker = rule.tracker(1e-8)
+    verdicts = [tracker.update(ti, ri) for ti, ri in zip(t, still, strict=True)]
+    first = int(np.argmax(verdicts))
+    assert rule.settled(t[: first + 1], still[: first + 1], 1e-8)
+    assert not rule.settled(t[:first], still[:first], 1e-8)
+    assert not rule.settled([0.0, 100.0], [1e-9, 1e-9], 1e-8)  # two huge steps: too few
+    assert rule.threshold(1e-3) == pytest.approx(1e-4)  # rtol / window dominates a tighter tol
+    with pytest.raises(ValueError, match="`window`"):
+        SettleRule(tol=1e-6, window=0.0)
