@@ -9,12 +9,21 @@ from dataclasses import dataclass
 import numpy as np
 
 from .case import Case
-from .equilibria import trace_baseline
+from .continuation import Boundary, Diagram, reduced_diagram, regime_boundaries
+from .equilibria import baseline_hss, trace_baseline
 from .linear import LinearVerdict, linear_analysis
 from .model import Model
 from .spike import SpikePrediction, spike_analysis
 
-__all__ = ["PointPrediction", "predict_case", "prediction_json", "prediction_table", "pulse_setup"]
+__all__ = [
+    "PointPrediction",
+    "predict_boundaries",
+    "predict_diagram",
+    "predict_case",
+    "prediction_json",
+    "prediction_table",
+    "pulse_setup",
+]
 
 
 @dataclass(frozen=True)
@@ -62,6 +71,46 @@ def predict_case(case: Case, model: Model) -> list[PointPrediction]:
                                    hss=None if eq is None else eq.state, spike=spike, linear=linear,
                                    lost_reason=reason))
     return out
+
+
+def _family(case: Case, model: Model):
+    name = case.sweep.parameter
+
+    def family(p: float):
+        return model.kinetics({**case.parameters, name: p}, name)
+
+    return family
+
+
+def predict_diagram(case: Case, model: Model, points: Sequence[PointPrediction]) -> Diagram | None:
+    """Branches of the reduced system over the sweep (see `harness.continuation`), seeded from the points'
+    HSS and local states; None for a sweep of one point or without any HSS."""
+    if len(points) < 2 or all(p.hss is None for p in points):
+        return None
+    locals_ = [[ls.values for ls in p.spike.local_states if not ls.is_hss] for p in points]
+    return reduced_diagram(_family(case, model), case.sweep.parameter, [p.value for p in points],
+                           [p.hss for p in points], locals_,
+                           totals=model.totals(case.guess) if len(model.conservation) else None)
+
+
+def predict_boundaries(case: Case, model: Model, points: Sequence[PointPrediction],
+                       diagram: Diagram | None = None) -> list[Boundary]:
+    """Regime boundaries between the sweep points, at the special points of the continued branches where one
+    explains the change (see `harness.continuation.regime_boundaries`); the regime between sweep points is
+    the point-wise analysis of `predict_case` at the HSS continued there."""
+    diagram = predict_diagram(case, model, points) if diagram is None else diagram
+    if diagram is None:
+        return []
+    family = _family(case, model)
+    species, sign = pulse_setup(case, model)
+    totals = model.totals(case.guess) if len(model.conservation) else None
+
+    def regime_at(p: float, guess: np.ndarray) -> str:
+        kin = family(p)
+        return spike_analysis(kin, baseline_hss(kin, guess, totals), species, sign).regime
+
+    return regime_boundaries(diagram, [p.value for p in points], [p.regime for p in points],
+                             [p.hss for p in points], regime_at)
 
 
 def _num(x: float | None) -> float | None:
@@ -114,6 +163,7 @@ def prediction_json(case: Case, model: Model, points: Sequence[PointPrediction])
         "totals": [float(t) for t in model.totals(case.guess)],
         "domain": {"shape": case.domain.shape, "size": list(case.domain.size)},
         "points": [_point_json(model, p) for p in points],
+        "boundaries": [b.as_json() for b in predict_boundaries(case, model, points)],
     }
 
 
