@@ -209,7 +209,7 @@ def main(argv: list[str] | None = None) -> None:
     disk = None if args.disk_level < 0 else args.disk_level
     print(f"scheme {sorted(TABLEAUS)}; t_end {args.t_end}; target error {args.target:g}; ladder {LADDER}")
     header = (f"{'case':<22}{'method':<13}{'rtol':>7}{'seconds':>9}{'steps':>7}{'error':>10}{'peak MB':>9}"
-              f"{'slower':>10}")
+              f"{'t / ours':>10}")
     for label, disc, methods in cases(args.quick, args.sizes_1d, args.sizes_2d, disk):
         u0 = pulse(disc)
         start = time.perf_counter()

@@ -489,7 +489,7 @@ class RosenbrockW(OdeSolver):
         h = 1e-6 if d0 < 1e-5 or d1 < 1e-5 else 0.01 * d0 / d1
         return max(h, 1e-12 * max(1.0, abs(self.t)))
 
-    band = (0.2, 2.0)  # step-size ratios h / h_W over which a factorised W is kept
+    band = (0.5, 1.2)  # step-size ratios h / h_W over which a factorised W is kept (wider: measured less accurate)
 
     def _prepare(self, h: float, refresh: bool) -> None:
         """Make ``W`` valid for step ``h``: rebuild when the step left the dead band or the Jacobian aged.
