@@ -854,8 +854,9 @@ def regime_boundaries(
     In each gap between consecutive sweep values the special points of ``diagram`` inside it are tried: the
     regime (``regime_at(p, hss_guess)``, the point-wise analysis) is taken a quarter of the way to each one's
     neighbours (other special points or the gap's ends) on both sides; a change across a special point puts a
-    boundary there, a change anywhere else (or in a gap without special points) is located by bisection on
-    ``regime_at`` to ``xtol`` of the sweep's span (``kind="regime"``).
+    boundary there (a special point on a sweep value belongs to the gap that ends there), a change anywhere
+    else (or in a gap without special points) is located by bisection on ``regime_at`` to ``xtol`` of the
+    sweep's span (``kind="regime"``).
     """
     values = np.asarray(values, dtype=float)
     span = float(np.ptp(values)) or 1.0
@@ -865,13 +866,15 @@ def regime_boundaries(
         a, b = float(values[k]), float(values[k + 1])
         lo, hi = min(a, b), max(a, b)
         ref = hss[k] if hss[k] is not None else hss[k + 1]
-        cands = [pt for pt in special if lo < pt.parameter < hi]
+        tol = 1e-9 * span
+        cands = [pt for pt in special if lo - tol <= pt.parameter <= hi + tol and abs(pt.parameter - a) > tol]
         cands.sort(key=lambda pt: pt.parameter if b > a else -pt.parameter)
+        at_end = next((pt for pt in cands if abs(pt.parameter - b) <= tol), None)  # on the sweep point b
         merged: list[SpecialPoint] = []
         for pt in cands:  # two kinds at one place: one boundary (the first kind found)
-            if not merged or abs(pt.parameter - merged[-1].parameter) > 1e-9 * span:
+            if abs(pt.parameter - b) > tol and (not merged or abs(pt.parameter - merged[-1].parameter) > tol):
                 merged.append(pt)
-        if (not merged and regimes[k] == regimes[k + 1]) or ref is None:
+        if (not merged and at_end is None and regimes[k] == regimes[k + 1]) or ref is None:
             if ref is None and regimes[k] != regimes[k + 1] and len(merged) == 1:
                 pt = merged[0]
                 out.append(Boundary(diagram.parameter, pt.parameter, pt.kind, (regimes[k], regimes[k + 1]),
@@ -889,7 +892,7 @@ def regime_boundaries(
             before = pt.parameter - 0.25 * (pt.parameter - places[i - 1])
             after = pt.parameter + 0.25 * (places[i + 1] - pt.parameter)
             tests += [(before, at(before), None), (after, at(after), pt)]
-        tests.append((b, regimes[k + 1], None))
+        tests.append((b, regimes[k + 1], at_end))
         for (p0, r0, _), (p1, r1, pt) in zip(tests[:-1], tests[1:]):
             if r0 == r1:
                 continue

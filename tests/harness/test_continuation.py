@@ -1,0 +1,209 @@
+"""Continuation of the reduced system: normal forms, the Brusselator, wave-pinning and the demo's boundaries."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.optimize import brentq
+
+from harness.case import load_case
+from harness.cli import main
+from harness.continuation import bialternate_test, global_branch, reduced_diagram, threshold_curves
+from harness.equilibria import trace_baseline
+from harness.kinetics import Kinetics
+from harness.model import build_model
+from harness.predict import predict_case, predict_diagram
+from harness.spike import local_states
+
+CASES = Path(__file__).resolve().parents[2] / "cases"
+
+
+def _scalar_family(f, fx, fp):
+    """Kinetics of a scalar ODE ``x' = f(x, p)`` with no slow species (so only well-mixed tests apply)."""
+
+    def family(p: float) -> Kinetics:
+        return Kinetics(
+            species=("x",), diffusion=np.zeros(1), slow=np.array([False]), conservation=np.zeros((0, 1)),
+            reaction=lambda u: f(u, p), jacobian=lambda u: fx(u, p)[None], dparam=lambda u: fp(u, p),
+        )
+
+    return family
+
+
+def _kinds(branch, kind):
+    return [pt for pt in branch.points if pt.kind == kind]
+
+
+def test_saddle_node_fold_at_zero():
+    """x' = p - x^2 folds at p = 0, x = 0 (common practice); the branch turns back through it."""
+    family = _scalar_family(lambda u, p: p - u**2, lambda u, p: -2 * u, lambda u, p: np.ones_like(u))
+    b = global_branch(family, np.array([1.0]), 1.0, (-1.0, 1.0), direction=-1)
+    folds = _kinds(b, "fold")
+    assert len(folds) == 1
+    assert folds[0].parameter == pytest.approx(0.0, abs=1e-9)
+    assert folds[0].state[0] == pytest.approx(0.0, abs=1e-6)
+    assert b.states[-1, 0] < -0.9  # came back along the lower half
+    assert np.all(b.stable[b.states[:, 0] > 1e-3]) and not np.any(b.stable[b.states[:, 0] < -1e-3])
+
+
+@pytest.mark.parametrize("power", [2, 3])
+def test_transcritical_and_pitchfork_branch_points(power):
+    """x' = p x - x^2 and x' = p x - x^3 have a branch point on x = 0 at p = 0 (common practice), no fold."""
+    family = _scalar_family(lambda u, p: p * u - u**power, lambda u, p: p - power * u ** (power - 1),
+                            lambda u, p: u)
+    b = global_branch(family, np.array([0.0]), -1.0, (-1.0, 1.0), typical=np.array([1.0]))
+    branch = _kinds(b, "branch")
+    assert len(branch) == 1
+    assert branch[0].parameter == pytest.approx(0.0, abs=1e-9)
+    assert not _kinds(b, "fold")
+    assert np.allclose(b.states, 0.0, atol=1e-12)
+
+
+def _brusselator(a: float = 2.0):
+    case = load_case(CASES / "ref_1d_brusselator.toml", [f"a={a}"])
+    model = build_model(case)
+    return case, model, (lambda b: model.kinetics({**case.parameters, "b": b}, "b"))
+
+
+def test_brusselator_well_mixed_hopf():
+    """The Brusselator's HSS (a, b/a) has its Hopf point at b = 1 + a^2 with frequency a
+    (Prigogine & Lefever 1968; common practice)."""
+    a = 1.5
+    _, _, family = _brusselator(a)
+    b = global_branch(family, np.array([a, 2.0 / a]), 2.0, (2.0, 5.0))
+    hopf = [pt for pt in b.points if pt.kind == "hopf" and pt.branch == "global"]
+    assert len(hopf) == 1
+    assert hopf[0].parameter == pytest.approx(1 + a**2, abs=1e-8)
+    assert hopf[0].frequency == pytest.approx(a, rel=1e-7)
+    assert np.allclose(b.states[:, 0], a) and np.allclose(b.states[:, 1], b.parameter / a)
+
+
+def test_brusselator_local_transcritical_and_switched_branch():
+    """Frozen v* = b/a, the local equation a - (b+1) s + s^2 v* = 0 has roots s = a and s = a/b, which cross
+    at b = 1 (algebra, common practice): a branch point there, and the switched branch is s = a/b."""
+    a = 2.0
+    _, _, family = _brusselator(a)
+    values = np.linspace(0.5, 2.0, 7)
+    hss = [np.array([a, b / a]) for b in values]
+    d = reduced_diagram(family, "b", values, hss, [[] for _ in values])
+    bps = [pt for pt in d.points if pt.kind == "branch"]
+    assert len(bps) == 1 and bps[0].parameter == pytest.approx(1.0, abs=1e-9)
+    local = [br for br in d.branches if br.kind == "local"]
+    assert local
+    for br in local:
+        np.testing.assert_allclose(br.local[:, 0], a / br.parameter, rtol=1e-9)
+    covered = np.concatenate([br.parameter for br in local])
+    assert covered.min() <= 0.5 + 1e-9 and covered.max() >= 2.0 - 1e-9
+
+
+def test_bialternate_test_vanishes_for_imaginary_pair():
+    """``prod (l_i + l_j)`` is 0 for a +-i w pair and positive for a stable focus (common practice)."""
+    assert bialternate_test(np.array([[0.0, -2.0], [2.0, 0.0]])) == pytest.approx(0.0, abs=1e-14)
+    assert bialternate_test(np.array([[-1.0, -2.0], [2.0, -1.0]])) == pytest.approx(-2.0)
+
+
+def _wave_pinning_diagram(stop: float):
+    """Diagram of the wave-pinning case over k0 in [0, stop], seeded the way predict seeds it."""
+    case = load_case(CASES / "ref_1d_wave_pinning.toml")
+    model = build_model(case)
+    values = np.linspace(0.0, stop, 15)
+    kins = [model.kinetics({**case.parameters, "k0": v}, "k0") for v in values]
+    guess = np.array([case.guess[s] for s in model.species])
+    trace = trace_baseline(kins, guess, values)
+    hss = [None if eq is None else eq.state for eq in trace.states]
+    locs = [[st.values for st in local_states(k, u) if not st.is_hss] if u is not None else []
+            for k, u in zip(kins, hss)]
+    family = lambda p: model.kinetics({**case.parameters, "k0": p}, "k0")  # noqa: E731
+    return reduced_diagram(family, "k0", values, hss, locs), float(model.totals(case.guess)[0])
+
+
+def test_wave_pinning_branch_points_and_local_fold_against_root_scan():
+    """Branch points and local folds of wave-pinning (f = b (k0 + a^2/(1 + a^2)) - a, a + b = T) equal the
+    roots of independent closed conditions, refined by brentq here (algebra, common practice):
+    branch points where the local slope b* 2a/(1 + a^2)^2 - 1 vanishes at the HSS (k0 = a/(T - a) -
+    a^2/(1 + a^2)); local folds where f = f_s = 0 at s != a*, i.e. b* = (1 + s^2)^2 / (2 s),
+    k0 = s/b* - s^2/(1 + s^2), with the HSS a* = T - b* solving f(a*, b*) = 0."""
+    stop = 0.14
+    d, total = _wave_pinning_diagram(stop)
+
+    def k0_hss(a):
+        return a / (total - a) - a**2 / (1 + a**2)
+
+    def slope(a):
+        return (total - a) * 2 * a / (1 + a**2) ** 2 - 1
+
+    grid = np.linspace(1e-3, total - 1e-3, 4001)
+    roots = [brentq(slope, grid[i], grid[i + 1], xtol=1e-14)
+             for i in np.flatnonzero(np.sign(slope(grid[:-1])) != np.sign(slope(grid[1:])))]
+    expected_bp = sorted(k0_hss(a) for a in roots if 0 <= k0_hss(a) <= stop)
+
+    def fold_eq(s):
+        b = (1 + s**2) ** 2 / (2 * s)
+        k0 = s / b - s**2 / (1 + s**2)
+        a = total - b
+        return b * (k0 + a**2 / (1 + a**2)) - a
+
+    sg = np.linspace(0.05, 1.2, 4001)  # b* < T keeps a* > 0 only for s in about (0.2, 1.1)
+    vals = fold_eq(sg)
+    fold_s = [brentq(fold_eq, sg[i], sg[i + 1], xtol=1e-14)
+              for i in np.flatnonzero((np.sign(vals[:-1]) != np.sign(vals[1:])) & (total - (1 + sg[1:] ** 2) ** 2
+                                                                                   / (2 * sg[1:]) > 0))]
+    expected_fold = sorted(s / ((1 + s**2) ** 2 / (2 * s)) - s**2 / (1 + s**2) for s in fold_s)
+    expected_fold = [k for k in expected_fold if 0 <= k <= stop]
+    found_bp = [pt.parameter for pt in d.points if pt.kind == "branch"]
+    found_fold = [pt.parameter for pt in d.points if pt.kind == "fold" and pt.branch == "local"]
+    assert len(expected_bp) == 2 and len(expected_fold) == 1
+    np.testing.assert_allclose(found_bp, expected_bp, atol=1e-8)
+    np.testing.assert_allclose(found_fold, expected_fold, atol=1e-8)
+    assert not [pt for pt in d.points if pt.kind == "fold" and pt.branch == "global"]
+
+
+@pytest.mark.slow
+def test_demo_boundaries_consistent_with_pointwise_regimes(capsys):
+    """Each boundary of the demo lies between two sweep points, and in each gap the boundaries chain the
+    regimes of its two ends; every gap whose ends differ has one."""
+    code = main(["predict", str(CASES / "demo_1d_membrane_switch.toml"), "--json"])
+    assert code == 0
+    data = json.loads(capsys.readouterr().out)
+    values = [p["params"][data["sweep_parameter"]] for p in data["points"]]
+    regimes = [p["regime"] for p in data["points"]]
+    bounds = data["boundaries"]
+    assert bounds
+    for k in range(len(values) - 1):
+        inside = sorted((b for b in bounds if values[k] < b["value"] <= values[k + 1]), key=lambda b: b["value"])
+        chain = [regimes[k]]
+        for b in inside:
+            assert b["between"][0] == chain[-1]
+            assert b["between"][1] != b["between"][0]
+            chain.append(b["between"][1])
+        assert chain[-1] == regimes[k + 1], (values[k], chain, regimes[k + 1])
+    assert {b["kind"] for b in bounds} <= {"fold", "hopf", "branch", "cycle-fold", "regime"}
+    assert all(b["kind"] != "regime" for b in bounds)  # every change here is explained by a special point
+
+
+def test_demo_threshold_continuous_along_unstable_branch():
+    """The route-1 threshold along the continued unstable local branch matches predict's at the sweep points
+    and falls to zero at the branch point where that branch meets the HSS."""
+    case = load_case(CASES / "demo_1d_membrane_switch.toml")
+    model = build_model(case)
+    points = predict_case(case, model)
+    d = predict_diagram(case, model, points)
+    curves = threshold_curves(d, np.array([1.0]), 1)
+    checked = 0
+    for p in points:
+        if p.regime != "pulse-triggered":
+            continue
+        hits = [np.interp(p.value, c.parameter[np.argsort(c.parameter)], c.height[np.argsort(c.parameter)])
+                for c in curves if c.parameter.min() <= p.value <= c.parameter.max()
+                and np.all(np.diff(c.parameter) > 0) | np.all(np.diff(c.parameter) < 0)]
+        positive = [h for h in hits if h > 0]
+        assert positive, p.value
+        assert min(positive) == pytest.approx(p.threshold, rel=2e-3)
+        checked += 1
+    assert checked >= 3
+    bp = next(pt for pt in d.points if pt.kind == "branch")
+    ends = [abs(c.height[np.argmin(np.abs(c.parameter - bp.parameter))]) for c in curves]
+    assert min(ends) < 1e-2
