@@ -272,6 +272,8 @@ class CosineFactored:
             msg = "singular reaction block in W"
             raise BackendError(msg)
         self._inv = inv
+        if n == 2:
+            self._inv2 = [np.ascontiguousarray(inv[:, i, j]) for i in (0, 1) for j in (0, 1)]
         self._gh = gh
         self._diag = 1.0 / (1.0 + gh * self._lam)
         self.nlu += 1
@@ -284,6 +286,9 @@ class CosineFactored:
                        type=2, norm="ortho", axes=self._axes).reshape(n, -1)
         if n == 1:
             return self._inv[:, 0, 0] * z
+        if n == 2:
+            i00, i01, i10, i11 = self._inv2
+            return np.stack([i00 * z[0] + i01 * z[1], i10 * z[0] + i11 * z[1]])
         return np.einsum("mij,jm->im", self._inv, z)
 
 
