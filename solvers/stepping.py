@@ -741,8 +741,8 @@ def integrate(
     reaction, jacobian : ``u (n, m) -> (n, m)`` and ``u (n, m) -> (n, n, m)``.
     u0 : ``(n, m)`` start state.
     t_end : time limit.
-    method : ``"rdcheck"`` (our ROS2 stepper) or ``"scipy-bdf"`` (scipy's BDF with the analytic sparse
-        Jacobian; lumped mass only), see `METHODS`.
+    method : ``"rdcheck"`` (our Rosenbrock W-method, ROS34PW2 by default) or ``"scipy-bdf"`` (scipy's
+        BDF with the analytic sparse Jacobian; lumped mass only), see `METHODS`.
     rtol, atol : local error tolerances.
     settle : stop early when this rule fires (status ``settled``); None runs to ``t_end``.
     snapshots : a count of equally spaced times in ``[0, t_end]``, or the times themselves.
