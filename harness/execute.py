@@ -316,14 +316,23 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
     try:
         while queue or inflight:
             # step: keep each worker busy with one run (so start times are known); a suspect runs alone
+            dead = False  # the pool broke before we noticed (a worker died since the last wait)
             while queue and len(inflight) < n and not any(j.suspect for j, _ in inflight.values()):
                 if queue[0].suspect and inflight:
                     break
                 job = queue.popleft()
-                inflight[pool.submit(_work, run, job.task, wall_limit)] = (job, time.perf_counter())
+                try:
+                    inflight[pool.submit(_work, run, job.task, wall_limit)] = (job, time.perf_counter())
+                except BrokenProcessPool:
+                    queue.appendleft(job)
+                    dead = True
+                    break
             now = time.perf_counter()
-            wait_for = None if timeout is None else max(0.0, min(t0 for _, t0 in inflight.values()) + timeout - now)
-            done, _ = wait(list(inflight), timeout=wait_for, return_when=FIRST_COMPLETED)
+            if dead:
+                done, _ = wait(list(inflight), timeout=10.0)
+            else:
+                wait_for = None if timeout is None else max(0.0, min(t0 for _, t0 in inflight.values()) + timeout - now)
+                done, _ = wait(list(inflight), timeout=wait_for, return_when=FIRST_COMPLETED)
             now = time.perf_counter()
             broken = []
             for fut in done:
@@ -333,7 +342,7 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
                     settle(fut, job)
                 except BrokenProcessPool:
                     broken.append(job)
-            if broken:
+            if broken or dead:
                 # step: a worker died; collect the other runs in flight (finished ones count), then restart
                 wait(list(inflight), timeout=10.0)
                 for fut, (job, t0) in list(inflight.items()):
@@ -348,6 +357,8 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
                 why = _exit_codes(pool)
                 _kill_pool(pool)
                 pool = _new_pool(n)
+                if not broken:
+                    continue
                 if len(broken) == 1:
                     if book.charge(broken[0], f"worker crashed: {why}"):
                         queue.appendleft(broken[0])
@@ -386,16 +397,14 @@ def _run_dask(jobs: list[_Job], book: _Book, address: str, run: RunFunction, wal
         raise InputError(msg) from None
     futures: dict = {}
 
-    def submit(job: _Job) -> None:
+    def submit(job: _Job):
         fut = client.submit(_work, run, job.task, wall_limit, pure=False,
                             key=f"rdcheck-run-{job.key}-{job.attempts}")
         futures[fut] = (job, time.perf_counter())
-        pending.add(fut)
+        return fut
 
     try:
-        pending = as_completed()
-        for job in jobs:
-            submit(job)
+        pending = as_completed([submit(job) for job in jobs], loop=client.loop)
         for fut in pending:
             job, t0 = futures.pop(fut)
             job.wall += time.perf_counter() - t0
@@ -411,7 +420,7 @@ def _run_dask(jobs: list[_Job], book: _Book, address: str, run: RunFunction, wal
                 exc = fut.exception() if fut.status == "error" else None
                 error = f"worker crashed: {_describe(exc) if exc is not None else fut.status}"
             if book.charge(job, error):
-                submit(job)
+                pending.add(submit(job))
             fut.release()
     except BaseException:
         client.cancel(list(futures))
