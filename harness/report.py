@@ -503,6 +503,8 @@ def plot_thresholds(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]
                     ax.plot(xi, hi, "v", color=colour, ms=5)
             ax.plot([], [], "-", color=colour, lw=2.2, label=f"{d}D bracket")
         ax.plot([], [], "--", color="#333333", lw=2.2, label="moved on refinement")
+        ax.plot([], [], "^", color="#333333", mfc="none", ls="none", label="no pattern up to")
+        ax.plot([], [], "v", color="#333333", ls="none", label="patterned from")
         ax.set_xlabel(study["sweep_parameter"])
         ax.set_ylabel("pulse height")
         ax.set_title(f"{study.get('model', '')}: predicted and measured pulse thresholds")
@@ -511,18 +513,23 @@ def plot_thresholds(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]
 
 
 def representative_runs(study: dict, records: dict[str, RunRecord], limit: int = 6) -> list[RunRecord]:
-    """The first run of each distinct outcome the study made (noise starts first, lower dimension first)."""
-    chosen: dict[str, RunRecord] = {}
+    """A few runs to show: the first of each distinct outcome (noise starts first, lowest dimension first),
+    then, while there is room, the same outcomes in the other dimensions, patterns first."""
+    first: dict[tuple[str, int], RunRecord] = {}
     for point in sorted(study.get("points") or [], key=lambda p: float(p["value"])):
         for d in study_dims(study):
             entry = (point.get("runs") or {}).get(str(d)) or {}
-            keys = [entry.get("noise"), *(k for _, k in entry.get("pulses") or ())]
-            for k in keys:
+            for k in [entry.get("noise"), *(k for _, k in entry.get("pulses") or ())]:
                 rec = records.get(k) if k is not None else None
-                if rec is not None and rec.outcome not in chosen and rec.final.size:
-                    chosen[rec.outcome] = rec
+                if rec is not None and rec.final.size:
+                    first.setdefault((rec.outcome, d), rec)
     order = {o: i for i, o in enumerate(OUTCOME_MARKERS)}
-    return sorted(chosen.values(), key=lambda r: order.get(r.outcome, len(order)))[:limit]
+    outcomes = sorted({o for o, _ in first}, key=lambda o: order.get(o, len(order)))
+    lead = [min((d for o2, d in first if o2 == o)) for o in outcomes]
+    chosen = [first[o, d] for o, d in zip(outcomes, lead)]
+    rest = sorted((key for key in first if key not in set(zip(outcomes, lead))),
+                  key=lambda key: (key[0] not in PATTERNED, order.get(key[0], len(order)), key[1]))
+    return (chosen + [first[key] for key in rest])[:limit]
 
 
 def _slow_index(study: dict) -> int:
@@ -714,11 +721,20 @@ def _html_table(rows: Sequence[dict], cols: Sequence[str]) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
+def rdcheck_version() -> str:
+    """The package version (from the installed metadata if ``harness`` was imported as a namespace package)."""
+    try:
+        from . import __version__
+    except ImportError:  # e.g. pytest's rootdir insertion of tests/harness shadows harness/__init__.py
+        from importlib.metadata import version
+
+        return version("rdcheck")
+    return __version__
+
+
 def write_index(study: dict, rows: Sequence[dict], figures: Sequence[Path], out_dir: Path,
                 date: str | None = None) -> Path:
     """A self-contained ``index.html``: case, date, version, the agreement and summary tables, PNG figures."""
-    from . import __version__
-
     date = date or datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     case = str(study.get("case", ""))
     overrides = " ".join(study.get("overrides") or [])
@@ -729,7 +745,7 @@ def write_index(study: dict, rows: Sequence[dict], figures: Sequence[Path], out_
             f"<h1>rdcheck report: {html.escape(case)}</h1>"
             f'<p class="meta">model {html.escape(str(study.get("model", "")))}'
             f"{' &middot; overrides ' + html.escape(overrides) if overrides else ''}"
-            f" &middot; {html.escape(date)} &middot; rdcheck {html.escape(__version__)}</p>"
+            f" &middot; {html.escape(date)} &middot; rdcheck {html.escape(rdcheck_version())}</p>"
             f"<p>{html.escape(caption(study))}</p>"
             f"<h2>Agreement per sweep point</h2>{_html_table(rows, table_columns(study, full=False))}"
             f"<h2>Agreement per regime</h2>{_html_table(regime_summary(study, rows), SUMMARY_COLUMNS)}"
