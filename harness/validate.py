@@ -64,7 +64,7 @@ def quick_overrides(case: Case) -> list[str]:
     chosen = list(values[::step])
     if chosen[-1] != values[-1] and len(chosen) < 12:
         chosen.append(values[-1])
-    cells = max(50, case.solver.cells_1d // 4)
+    cells = max(50, case.solver.cells_1d // 2)
     return [f"solver.cells_1d={cells}", f"sweep.values=[{', '.join(repr(v) for v in chosen)}]"]
 
 
