@@ -7,7 +7,6 @@ import io
 import re
 
 import pytest
-from study_fixtures import make_study, with_extras
 
 from harness.errors import InputError
 from harness.report import (
@@ -74,17 +73,17 @@ def test_agreement_rules(regime, noise, pulses, expected):
     assert agreement(regime, runs) is expected
 
 
-def test_rows_apply_rules_per_dimension():
+def test_rows_apply_rules_per_dimension(study_maker):
     """A contradicting 2D run makes only that dimension disagree; the fixture's defaults all agree."""
-    study, records = make_study({(2, 2): ("baseline", [])})
+    study, records = study_maker({(2, 2): ("baseline", [])})
     rows = agreement_rows(study, records)
     assert [r["agree_1d"] for r in rows] == [True, True, True, True, None]
     assert [r["agree_2d"] for r in rows] == [True, True, False, True, None]
 
 
-def test_rows_missing_records_give_no_verdict():
+def test_rows_missing_records_give_no_verdict(study_maker):
     """A point whose runs are not in the records has empty outcomes and no verdict."""
-    study, records = make_study()
+    study, records = study_maker()
     kept = {k: v for k, v in records.items() if not k.startswith(("n2-", "n0-1", "p0-1"))}
     row = _row(study, kept, 1.0)
     assert row["noise_1d"] is None and row["agree_1d"] is None and row["agree_2d"] is None
@@ -92,9 +91,9 @@ def test_rows_missing_records_give_no_verdict():
     assert row["agree_1d"] is None and row["pulses_1d"] == ((1.0, "missing"), (2.0, "missing"))
 
 
-def test_pulse_column_lowest_patterned_else_largest():
+def test_pulse_column_lowest_patterned_else_largest(study_maker):
     """`pulse_<d>d` is the lowest pulse that patterned, else the largest tried (by magnitude)."""
-    study, records = make_study({(1, 1): ("baseline", [(2.0, "stationary-pattern"), (0.5, "baseline"),
+    study, records = study_maker({(1, 1): ("baseline", [(2.0, "stationary-pattern"), (0.5, "baseline"),
                                                         (1.0, "dynamic-pattern")]),
                                  (0, 1): ("baseline", [(-1.0, "baseline"), (-3.0, "other-uniform")])})
     row = _row(study, records, 0.75)
@@ -104,9 +103,9 @@ def test_pulse_column_lowest_patterned_else_largest():
     assert row["agree_1d"] is False  # no-pattern, and a pulse settled elsewhere
 
 
-def test_rows_carry_prediction_and_thresholds():
+def test_rows_carry_prediction_and_thresholds(study_maker):
     """Regime, linear verdict, LPA threshold, bracket and refinement come through from the study."""
-    study, records = make_study()
+    study, records = study_maker()
     row = _row(study, records, 0.75)
     assert row["regime"] == "pulse-triggered" and row["turing_unstable"] is False
     assert row["threshold_lpa"] == 0.8
@@ -116,16 +115,16 @@ def test_rows_carry_prediction_and_thresholds():
     assert _row(study, records, 1.0)["turing_unstable"] is True
 
 
-def test_prediction_matched_by_value_when_index_differs():
+def test_prediction_matched_by_value_when_index_differs(study_maker):
     """A point whose index does not match the prediction list is matched by its sweep value."""
-    study, records = make_study()
+    study, records = study_maker()
     study["points"][2]["index"] = 40
     assert _row(study, records, 1.0)["regime"] == "self-patterning"
 
 
-def test_summary_counts():
+def test_summary_counts(study_maker):
     """The per-regime summary counts agree, disagree and undecided points per dimension."""
-    study, records = make_study({(2, 2): ("baseline", []), (0, 1): ("unsettled", [(1.0, "baseline")])})
+    study, records = study_maker({(2, 2): ("baseline", []), (0, 1): ("unsettled", [(1.0, "baseline")])})
     summary = regime_summary(study, agreement_rows(study, records))
     by = {(s["regime"], s["dim"]): s for s in summary}
     assert (by["self-patterning", 2]["agree"], by["self-patterning", 2]["disagree"]) == (0, 1)
@@ -142,9 +141,9 @@ CONTRACT = ["k", "regime", "turing_unstable", "threshold_lpa",
             "noise_2d", "pulse_2d", "threshold_low_2d", "threshold_high_2d", "agree_2d"]
 
 
-def test_csv_columns_and_values():
+def test_csv_columns_and_values(study_maker):
     """CSV starts with the contract columns in order and writes true/false/empty and the pulses tried."""
-    study, records = make_study()
+    study, records = study_maker()
     rows = agreement_rows(study, records)
     table = list(csv.DictReader(io.StringIO(to_csv(rows, table_columns(study)))))
     header = list(table[0])
@@ -155,9 +154,9 @@ def test_csv_columns_and_values():
     assert float(table[1]["threshold_lpa"]) == 0.8 and table[0]["threshold_lpa"] == ""
 
 
-def test_markdown_table_shape():
+def test_markdown_table_shape(study_maker):
     """The Markdown table has a header, a rule and one line per point, all with the same cell count."""
-    study, records = make_study()
+    study, records = study_maker()
     rows = agreement_rows(study, records)
     text = to_markdown(rows, table_columns(study, full=False))
     lines = [line for line in text.splitlines() if line.startswith("|")]
@@ -167,9 +166,9 @@ def test_markdown_table_shape():
     assert [c.strip() for c in cells[0]][:len(CONTRACT)] == CONTRACT
 
 
-def test_latex_booktabs_structure_and_escaping():
+def test_latex_booktabs_structure_and_escaping(study_maker):
     """The TeX table is booktabs (toprule/midrule/bottomrule), cells escaped, caption names the settings."""
-    study, records = make_study()
+    study, records = study_maker()
     study["model"] = "toy_model & 50% #1"
     rows = agreement_rows(study, records)
     cols = table_columns(study, full=False)
@@ -206,10 +205,10 @@ def test_parse_formats():
 
 
 @pytest.mark.slow
-def test_write_report_files(tmp_path):
+def test_write_report_files(study_maker, study_extras, tmp_path):
     """The report writes every table, each figure as non-trivial PNG and PDF, and an index that shows them."""
-    study, records = make_study()
-    paths = write_report(with_extras(study), records, tmp_path)
+    study, records = study_maker()
+    paths = write_report(study_extras(study), records, tmp_path)
     names = {p.name for p in paths}
     for stem in ("agreement", "summary"):
         assert {f"{stem}.md", f"{stem}.csv", f"{stem}.tex"} <= names
@@ -224,9 +223,9 @@ def test_write_report_files(tmp_path):
     assert "http" not in page
 
 
-def test_write_report_formats_and_optional_figures(tmp_path):
+def test_write_report_formats_and_optional_figures(study_maker, tmp_path):
     """`formats` selects the tables; figures without data (boundaries, widths, ratios) are left out."""
-    study, records = make_study()
+    study, records = study_maker()
     paths = write_report(study, records, tmp_path, ("csv",))
     names = {p.name for p in paths}
     assert {"agreement.csv", "summary.csv"} <= names
@@ -235,9 +234,9 @@ def test_write_report_formats_and_optional_figures(tmp_path):
     assert "regimes.png" in names and "index.html" in names
 
 
-def test_representative_runs_one_per_outcome_then_other_dims():
+def test_representative_runs_one_per_outcome_then_other_dims(study_maker):
     """Representatives cover every distinct outcome once before repeating one in another dimension."""
-    study, records = make_study()
+    study, records = study_maker()
     runs = representative_runs(study, records)
     outcomes = [r.outcome for r in runs]
     assert outcomes[:4] == ["baseline", "other-uniform", "stationary-pattern", "dynamic-pattern"]

@@ -1,10 +1,15 @@
-"""Hand-built studies and run records (fake numbers, exact structure) for the report and compare tests."""
+"""Fixtures for the report and compare tests: hand-built studies and run records (fake numbers, exact structure).
+
+The builders are handed out as fixtures (``study_maker``, ``record_maker``, ``study_extras``) so that the tests
+need no import of this file, whatever pytest's import mode.
+"""
 
 from __future__ import annotations
 
 import copy
 
 import numpy as np
+import pytest
 
 from harness.runs import RunRecord, RunTask
 
@@ -85,3 +90,21 @@ def with_extras(study: dict) -> dict:
     s["ratios"] = [{"ratio": r, "store_prefix": f"r{r}", "agree_fraction": f, "threshold_low": 0.7,
                     "threshold_high": 0.9, "threshold_lpa": 0.8} for r, f in ((1e-3, 1.0), (1e-2, 0.8), (0.1, 0.4))]
     return s
+
+
+@pytest.fixture
+def study_maker():
+    """:func:`make_study`: (study, records) with one point per regime; ``outcomes`` replaces runs."""
+    return make_study
+
+
+@pytest.fixture
+def record_maker():
+    """:func:`record`: one RunRecord with a small final state."""
+    return record
+
+
+@pytest.fixture
+def study_extras():
+    """:func:`with_extras`: a copy of a study with boundaries, widths and ratios."""
+    return with_extras
