@@ -1,0 +1,101 @@
+"""`rdcheck validate` / `report` / `compare` / `merge` end to end on a small demo study."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+import pytest
+
+from harness.cli import main
+
+CASES = Path(__file__).resolve().parents[2] / "cases"
+DEMO = str(CASES / "demo_1d_membrane_switch.toml")
+SMALL = ["--set", "sweep.values=[0.16, 0.24, 0.4, 0.66]", "--set", "solver.cells_1d=100"]
+
+
+def _validate(store: Path, *extra: str) -> None:
+    assert main(["validate", DEMO, *SMALL, "--dims", "1", "--store", str(store), *extra]) == 0
+
+
+def _table(store: Path | list[Path], out: Path) -> list[dict]:
+    stores = [str(s) for s in store] if isinstance(store, list) else [str(store)]
+    assert main(["report", *stores, "--out", str(out)]) == 0
+    with open(out / "agreement.csv", newline="") as f:
+        return list(csv.DictReader(f))
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory):
+    """One validation of four demo points in a local process pool, and its report."""
+    root = tmp_path_factory.mktemp("study")
+    store = root / "demo.h5"
+    _validate(store, "--workers", "2")
+    return store, _table(store, root / "report"), root / "report"
+
+
+def test_report_tables_and_figures(study, capsys):
+    """The report has one row per point with the DESIGN.md columns, and every table and figure file."""
+    _, rows, out = study
+    assert [float(r["s"]) for r in rows] == [0.16, 0.24, 0.4, 0.66]
+    for col in ("s", "regime", "turing_unstable", "threshold_lpa", "noise_1d", "pulse_1d", "threshold_low_1d",
+                "threshold_high_1d", "agree_1d"):
+        assert col in rows[0]
+    for name in ("agreement.csv", "agreement.md", "agreement.tex", "index.html", "regimes.png", "regimes.pdf"):
+        assert (out / name).stat().st_size > 100
+    by_s = {float(r["s"]): r for r in rows}
+    assert by_s[0.16]["regime"] == "no-pattern" and by_s[0.16]["agree_1d"] == "true"
+    assert by_s[0.4]["regime"] == "self-patterning" and by_s[0.4]["noise_1d"] == "stationary-pattern"
+    low, high = float(by_s[0.24]["threshold_low_1d"]), float(by_s[0.24]["threshold_high_1d"])
+    assert low < high <= 1.03 * low  # an honest bracket within the 2 % tolerance (plus rounding)
+    assert "\\toprule" in (out / "agreement.tex").read_text()
+    capsys.readouterr()
+
+
+def test_rerun_recomputes_nothing(study, monkeypatch, capsys):
+    """Rerunning the same command finds every run in the store and computes none."""
+    store, rows, _ = study
+    import harness.runs
+
+    def refuse(*args, **kwargs):
+        msg = "a stored run was recomputed"
+        raise AssertionError(msg)
+
+    monkeypatch.setattr(harness.runs, "run_task", refuse)
+    _validate(store, "--workers", "0")
+    capsys.readouterr()
+
+
+def test_compare_exit_codes(study, tmp_path, capsys):
+    """`compare` exits 0 for the same study and 1 when a model change moves outcomes or thresholds."""
+    store, _, _ = study
+    assert main(["compare", str(store), str(store)]) == 0
+    changed = tmp_path / "changed.h5"
+    _validate(changed, "--workers", "0", "--set", "k_f=1.3")
+    capsys.readouterr()
+    assert main(["compare", str(store), str(changed)]) == 1
+    listing = capsys.readouterr().out
+    assert "regime: " in listing or "noise: " in listing or "threshold bracket" in listing
+
+
+def test_shards_merge_to_the_same_table(study, tmp_path, capsys):
+    """Two shards, merged by `rdcheck merge` or given to `report` together, give the same table."""
+    _, rows, _ = study
+    shards = [tmp_path / f"part{k}.h5" for k in (1, 2)]
+    for k, path in enumerate(shards, start=1):
+        _validate(path, "--workers", "0", "--shard", f"{k}/2")
+    together = _table(shards, tmp_path / "together")
+    merged = tmp_path / "merged.h5"
+    assert main(["merge", *map(str, shards), "--out", str(merged)]) == 0
+    assert _table(merged, tmp_path / "merged_report") == together
+    keys = ("s", "regime", "noise_1d", "pulse_1d", "agree_1d")
+    assert [{k: r[k] for k in keys} for r in together] == [{k: r[k] for k in keys} for r in rows]
+    capsys.readouterr()
+
+
+def test_bad_options_exit_two(capsys):
+    """Bad `--shard`, `--dims` and `--tolerance` values exit 2 with one line."""
+    for extra in (["--shard", "3/2"], ["--dims", "3"], ["--tolerance", "2"]):
+        assert main(["validate", DEMO, *extra]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and extra[0] in err
