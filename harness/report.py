@@ -488,7 +488,7 @@ def plot_thresholds(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]
         fig, ax = plt.subplots()
         _shade(ax, x, regimes)
         lpa = np.array([np.nan if r["threshold_lpa"] is None else r["threshold_lpa"] for r in rows], dtype=float)
-        ax.plot(x, lpa, "-", color=BRANCH_COLOURS["local"], marker=".", ms=3, label="LPA threshold")
+        ax.plot(x, lpa, "-", color=BRANCH_COLOURS["local"], marker="o", ms=3.5, label="LPA threshold")
         for k, d in enumerate(dims):
             colour = DIM_COLOURS.get(d, "#333333")
             shift = (k - (len(dims) - 1) / 2) * 0.15 * step
@@ -578,6 +578,14 @@ def plot_runs(study: dict, runs: Sequence[RunRecord], stem: Path) -> list[Path]:
         return _save(fig, stem)
 
 
+def _behaviour(outcome) -> str:
+    """A boundary side as text: an outcome name, or the driver's (noise patterned, some pulse patterned)."""
+    if isinstance(outcome, (list, tuple)) and len(outcome) == 2:
+        noise, pulse = outcome
+        return "noise patterns" if noise else "pulse patterns" if pulse else "no pattern"
+    return str(outcome)
+
+
 def plot_boundaries(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]:
     """Measured regime-boundary brackets on the sweep axis beside the spike-limit and linear boundaries."""
     plt = _pyplot()
@@ -597,7 +605,7 @@ def plot_boundaries(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]
             ax.plot([], [], "-", color=DIM_COLOURS.get(d, "#333333"), lw=4, label=f"{d}D PDE bracket")
         ax.plot([], [], "|", color=BRANCH_COLOURS["local"], ms=10, mew=2, ls="none", label="spike limit")
         ax.plot([], [], "x", color="#333333", ls="none", label="linear")
-        labels = [f"{b['dim']}D: {' | '.join(map(str, b.get('outcomes') or []))}" for b in bounds]
+        labels = [f"{b['dim']}D: {' | '.join(_behaviour(o) for o in b.get('outcomes') or [])}" for b in bounds]
         ax.set_yticks(range(len(bounds)), labels, fontsize=7.5)
         ax.set_ylim(-0.6, max(len(bounds), 1) - 0.4)
         ax.set_xlabel(study["sweep_parameter"])
@@ -721,20 +729,11 @@ def _html_table(rows: Sequence[dict], cols: Sequence[str]) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def rdcheck_version() -> str:
-    """The package version (from the installed metadata if ``harness`` was imported as a namespace package)."""
-    try:
-        from . import __version__
-    except ImportError:  # e.g. pytest's rootdir insertion of tests/harness shadows harness/__init__.py
-        from importlib.metadata import version
-
-        return version("rdcheck")
-    return __version__
-
-
 def write_index(study: dict, rows: Sequence[dict], figures: Sequence[Path], out_dir: Path,
                 date: str | None = None) -> Path:
     """A self-contained ``index.html``: case, date, version, the agreement and summary tables, PNG figures."""
+    from . import __version__
+
     date = date or datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     case = str(study.get("case", ""))
     overrides = " ".join(study.get("overrides") or [])
@@ -745,7 +744,7 @@ def write_index(study: dict, rows: Sequence[dict], figures: Sequence[Path], out_
             f"<h1>rdcheck report: {html.escape(case)}</h1>"
             f'<p class="meta">model {html.escape(str(study.get("model", "")))}'
             f"{' &middot; overrides ' + html.escape(overrides) if overrides else ''}"
-            f" &middot; {html.escape(date)} &middot; rdcheck {html.escape(rdcheck_version())}</p>"
+            f" &middot; {html.escape(date)} &middot; rdcheck {html.escape(__version__)}</p>"
             f"<p>{html.escape(caption(study))}</p>"
             f"<h2>Agreement per sweep point</h2>{_html_table(rows, table_columns(study, full=False))}"
             f"<h2>Agreement per regime</h2>{_html_table(regime_summary(study, rows), SUMMARY_COLUMNS)}"
