@@ -341,7 +341,7 @@ def _continue(
     return _Curve(z=np.array(ys) * scale, t=np.array(ts), tests={k: np.array(v) for k, v in vals.items()})
 
 
-def _locate(system: _System, curve: _Curve, scale: np.ndarray, k: int, test) -> tuple | None:
+def _locate(system: _System, curve: _Curve, scale: np.ndarray, k: int, test, tol: float = 1e-13) -> tuple | None:
     """Zero of ``test`` between points ``k`` and ``k+1``: brentq on the secant, each trial corrected onto the
     curve in the hyperplane normal to the secant. Returns ``(z, t, F_z)`` (``z`` unscaled) or None."""
     a, b = curve.z[k] / scale, curve.z[k + 1] / scale
@@ -354,7 +354,7 @@ def _locate(system: _System, curve: _Curve, scale: np.ndarray, k: int, test) -> 
         return system.jac(y * scale) * scale
 
     def at(theta: float):
-        y, _ = _correct(fun, jac, a + theta * (b - a), d, tol=1e-13, max_iter=14)
+        y, _ = _correct(fun, jac, a + theta * (b - a), d, tol=tol, max_iter=14)
         if y is None:
             return None
         jz = jac(y)
@@ -378,7 +378,7 @@ def _locate(system: _System, curve: _Curve, scale: np.ndarray, k: int, test) -> 
         elif ga * gb > 0:
             return None
         else:
-            theta = brentq(g, 0.0, 1.0, xtol=1e-12, rtol=4 * np.finfo(float).eps, maxiter=80)
+            theta = brentq(g, 0.0, 1.0, xtol=min(1e-12, tol), rtol=4 * np.finfo(float).eps, maxiter=80)
     except (ArithmeticError, np.linalg.LinAlgError):
         return None
     y, t, jz = at(theta)

@@ -15,6 +15,7 @@ from harness.continuation import bialternate_test, global_branch, reduced_diagra
 from harness.equilibria import trace_baseline
 from harness.kinetics import Kinetics
 from harness.model import build_model
+from harness.periodic import VectorField, cycles_from_hopf
 from harness.predict import predict_case, predict_diagram
 from harness.spike import local_states
 
@@ -207,3 +208,60 @@ def test_demo_threshold_continuous_along_unstable_branch():
     bp = next(pt for pt in d.points if pt.kind == "branch")
     ends = [abs(c.height[np.argmin(np.abs(c.parameter - bp.parameter))]) for c in curves]
     assert min(ends) < 1e-2
+
+
+def _stuart_landau(omega: float):
+    """x' = mu x - omega y - r^2 x, y' = omega x + mu y - r^2 y (the Hopf normal form in polar radius)."""
+
+    def rhs(x, mu):
+        r2 = x[0] ** 2 + x[1] ** 2
+        return np.array([mu * x[0] - omega * x[1] - r2 * x[0], omega * x[0] + mu * x[1] - r2 * x[1]])
+
+    def jac(x, mu):
+        a, b = x
+        return np.array([[mu - 3 * a**2 - b**2, -omega - 2 * a * b], [omega - 2 * a * b, mu - a**2 - 3 * b**2]])
+
+    return VectorField(rhs, jac, lambda x, mu: x.copy(), np.zeros((0, 2)))
+
+
+def test_stuart_landau_cycle_radius_period_multiplier():
+    """Stuart-Landau orbits have radius sqrt(mu), period 2 pi / omega and nontrivial Floquet multiplier
+    exp(-2 mu T) (common practice / from memory); they are stable and have no fold."""
+    omega = 2.0
+    fam = cycles_from_hopf(_stuart_landau(omega), None, np.zeros(2), 0.0, omega, (-0.5, 1.0))
+    assert fam is not None and fam.parameter.max() > 0.9
+    mu = fam.parameter
+    np.testing.assert_allclose(np.hypot(fam.start[:, 0], fam.start[:, 1]), np.sqrt(mu), rtol=1e-6, atol=1e-8)
+    np.testing.assert_allclose(fam.maxima[:, 0], np.sqrt(mu), rtol=1e-6, atol=1e-8)
+    np.testing.assert_allclose(fam.minima[:, 1], -np.sqrt(mu), rtol=1e-6, atol=1e-8)
+    np.testing.assert_allclose(fam.period, 2 * np.pi / omega, rtol=1e-8)
+    np.testing.assert_allclose(fam.multipliers[:, 0], np.exp(-2 * mu * fam.period), rtol=1e-6, atol=1e-9)
+    assert fam.stable.all() and fam.folds == ()
+
+
+@pytest.mark.slow
+def test_subcritical_hopf_cycle_fold():
+    """r' = mu r + 2 r^3 - r^5 (angle' = omega) has a subcritical Hopf at mu = 0 whose unstable orbits
+    (r^2 = 1 - sqrt(1 + mu)) fold at mu = -1, r = 1 onto stable ones (algebra on the generalised Hopf normal
+    form; common practice)."""
+    omega = 1.0
+
+    def rhs(x, mu):
+        r2 = x[0] ** 2 + x[1] ** 2
+        c = mu + 2 * r2 - r2**2
+        return np.array([c * x[0] - omega * x[1], omega * x[0] + c * x[1]])
+
+    def jac(x, mu):
+        r2 = x[0] ** 2 + x[1] ** 2
+        c, dc = mu + 2 * r2 - r2**2, 2 - 2 * r2
+        a, b = x
+        return np.array([[c + 2 * a * a * dc, -omega + 2 * a * b * dc], [omega + 2 * a * b * dc, c + 2 * b * b * dc]])
+
+    fam = cycles_from_hopf(VectorField(rhs, jac, lambda x, mu: x.copy(), np.zeros((0, 2))), None, np.zeros(2),
+                           0.0, omega, (-1.5, 0.5), max_steps=60)
+    assert fam is not None
+    assert len(fam.folds) == 1 and fam.folds[0] == pytest.approx(-1.0, abs=1e-7)
+    r2 = fam.start[:, 0] ** 2 + fam.start[:, 1] ** 2
+    np.testing.assert_allclose(fam.parameter + 2 * r2 - r2**2, 0.0, atol=1e-8)
+    inner = r2 < 0.9
+    assert not fam.stable[inner].any() and fam.stable[r2 > 1.1].all()
