@@ -56,10 +56,13 @@ __all__ = [
     "DIM_COLOURS",
     "FORMATS",
     "OUTCOME_MARKERS",
+    "REGIMES",
     "DimRuns",
     "agreement",
     "agreement_rows",
+    "caption",
     "dim_runs",
+    "load_stores",
     "parse_formats",
     "plot_boundaries",
     "plot_ratios",
@@ -69,12 +72,17 @@ __all__ = [
     "plot_widths",
     "regime_summary",
     "report_store",
+    "representative_runs",
+    "study_dims",
     "table_columns",
+    "tex_escape",
     "to_csv",
     "to_latex",
     "to_markdown",
+    "write_figures",
     "write_index",
     "write_report",
+    "write_tables",
 ]
 
 #: Table formats `rdcheck report --format` accepts.
@@ -83,7 +91,8 @@ FORMATS = ("md", "csv", "tex")
 #: Regime names in the order tables and legends list them.
 REGIMES = ("no-pattern", "pulse-triggered", "self-patterning", "self-oscillating", "unresolved")
 
-#: Outcome -> (marker, filled). Filled markers are patterns; shapes are our own choice.
+#: Outcome -> (marker, filled). Filled: a pattern, or the solid marks of `diverged` and `unsettled`; shapes are
+#: our own choice.
 OUTCOME_MARKERS = {
     "baseline": ("o", False),
     "other-uniform": ("s", False),
@@ -458,11 +467,11 @@ def plot_regimes(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]:
                     continue
                 marker, filled = OUTCOME_MARKERS.get(o, ("*", True))
                 colour = AGREE_COLOURS[r.get(f"agree_{d}d")]
-                ax.plot(xi, j, marker, ms=6, color=colour, mfc=colour if filled else "none", ls="none")
+                ax.plot(xi, j, ls="none", marker=marker, ms=6, color=colour, mfc=colour if filled else "none")
                 seen.add(o)
         for o in (o for o in OUTCOME_MARKERS if o in seen):
             marker, filled = OUTCOME_MARKERS[o]
-            ax.plot([], [], marker, color="#333333", mfc="#333333" if filled else "none", ls="none", label=o)
+            ax.plot([], [], ls="none", marker=marker, color="#333333", mfc="#333333" if filled else "none", label=o)
         for verdict, text in ((True, "agrees"), (False, "disagrees"), (None, "no verdict")):
             ax.plot([], [], "s", ms=6, color=AGREE_COLOURS[verdict], ls="none", label=text)
         ax.set_yticks(range(len(lanes)), [f"{d}D {kind}" for d, kind in lanes])
@@ -537,6 +546,13 @@ def _slow_index(study: dict) -> int:
     return next((i for i, s in enumerate(slow) if s), 0)
 
 
+def _colour_limits(values: np.ndarray) -> tuple[float, float]:
+    """Colour range of a field, at least 1e-6 of its size wide, so round-off never shows as a pattern."""
+    lo, hi = float(np.min(values)), float(np.max(values))
+    mid, half = 0.5 * (lo + hi), 0.5 * max(hi - lo, 1e-6 * max(abs(lo), abs(hi), 1e-12))
+    return mid - half, mid + half
+
+
 def plot_runs(study: dict, runs: Sequence[RunRecord], stem: Path) -> list[Path]:
     """Final states of a few runs: 1D profiles of every species; 2D the first slow species on its nodes."""
     import matplotlib.tri as mtri
@@ -568,10 +584,11 @@ def plot_runs(study: dict, runs: Sequence[RunRecord], stem: Path) -> list[Path]:
             else:
                 i = _slow_index(study)
                 tri = mtri.Triangulation(rec.coords[:, 0], rec.coords[:, 1])
-                art = ax.tripcolor(tri, rec.final[i], shading="gouraud", cmap=FIELD_MAP)
+                lo, hi = _colour_limits(rec.final[i])
+                art = ax.tripcolor(tri, rec.final[i], shading="gouraud", cmap=FIELD_MAP, vmin=lo, vmax=hi)
                 ax.set_aspect("equal")
                 ax.set_axis_off()
-                fig.colorbar(art, ax=ax, shrink=0.8, label=species[i] if i < len(species) else None)
+                fig.colorbar(art, ax=ax, shrink=0.8, format="%.6g", label=species[i] if i < len(species) else None)
         fig.suptitle(f"{study.get('model', '')}: final states of representative runs", x=0.01, ha="left",
                      fontsize=10, fontweight="bold")
         fig.tight_layout()

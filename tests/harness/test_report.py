@@ -6,6 +6,7 @@ import csv
 import io
 import re
 
+import numpy as np
 import pytest
 
 from harness.errors import InputError
@@ -207,7 +208,7 @@ def test_parse_formats():
 @pytest.mark.slow
 def test_write_report_files(study_maker, study_extras, tmp_path):
     """The report writes every table, each figure as non-trivial PNG and PDF, and an index that shows them."""
-    study, records = study_maker()
+    study, records = study_maker({(2, 2): ("unsettled", []), (3, 2): ("diverged", [])})
     paths = write_report(study_extras(study), records, tmp_path)
     names = {p.name for p in paths}
     for stem in ("agreement", "summary"):
@@ -242,3 +243,12 @@ def test_representative_runs_one_per_outcome_then_other_dims(study_maker):
     assert outcomes[:4] == ["baseline", "other-uniform", "stationary-pattern", "dynamic-pattern"]
     assert all(r.task.dim == 1 for r in runs[:4])
     assert runs[4].task.dim == 2 and runs[4].outcome in ("stationary-pattern", "dynamic-pattern")
+
+
+def test_colour_limits_hide_round_off():
+    """A field uniform to round-off gets a colour range of at least 1e-6 relative, centred on it."""
+    from harness.report import _colour_limits
+
+    lo, hi = _colour_limits(np.array([0.052, 0.052 + 1e-15]))
+    assert hi - lo >= 0.052e-6 and lo < 0.052 < hi
+    assert _colour_limits(np.array([1.0, 3.0])) == (1.0, 3.0)
