@@ -739,9 +739,10 @@ _CSS = ("body{font-family:sans-serif;max-width:76rem;margin:1.5rem auto;padding:
 def _html_table(rows: Sequence[dict], cols: Sequence[str]) -> str:
     head = "".join(f"<th>{html.escape(c)}</th>" for c in cols)
     body = []
+    verdict = [c.startswith("agree_") for c in cols]
     for r in _text_rows(rows, cols, 4):
-        cells = "".join(f'<td class="{v}">{html.escape(v)}</td>' if v in ("true", "false")
-                        else f"<td>{html.escape(v)}</td>" for v in r)
+        cells = "".join(f'<td class="{v}">{v}</td>' if is_verdict and v in ("true", "false")
+                        else f"<td>{html.escape(v)}</td>" for v, is_verdict in zip(r, verdict))
         body.append(f"<tr>{cells}</tr>")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 

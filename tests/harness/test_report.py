@@ -252,3 +252,16 @@ def test_colour_limits_hide_round_off():
     lo, hi = _colour_limits(np.array([0.052, 0.052 + 1e-15]))
     assert hi - lo >= 0.052e-6 and lo < 0.052 < hi
     assert _colour_limits(np.array([1.0, 3.0])) == (1.0, 3.0)
+
+
+def test_index_marks_only_verdicts_and_escapes(study_maker, tmp_path):
+    """index.html colours only the agree cells and escapes text from the study."""
+    from harness.report import write_index
+
+    study, records = study_maker()
+    study["case"] = "cases/<x>&y.toml"
+    page = write_index(study, agreement_rows(study, records), [tmp_path / "regimes.png"], tmp_path,
+                       date="2026-01-01").read_text()
+    assert "cases/&lt;x&gt;&amp;y.toml" in page and "<x>" not in page
+    assert page.count('class="true"') == 8  # agree_1d and agree_2d true at four points
+    assert page.count('class="false"') == 0 and '<img src="regimes.png"' in page
