@@ -33,6 +33,14 @@ One row per sweep point, in this order: the sweep parameter (its value), ``regim
 largest pulse tried. The threshold bracket is ``low`` (highest pulse that did not pattern) and ``high``
 (lowest that did) at the study's resolution. ``agreement.csv`` holds every column; ``agreement.md`` and
 ``agreement.tex`` hold the contract columns plus ``threshold_held_<d>d``.
+
+Files
+-----
+``agreement.{md,csv,tex}``, ``summary.{md,csv,tex}`` (agree / disagree / undecided per regime and dimension),
+figures as PNG and PDF: ``regimes`` (bands of predicted regimes, PDE outcomes as markers: shape = outcome,
+colour = verdict), ``thresholds`` (LPA threshold and measured brackets), ``runs`` (final states of a few
+representative runs), and where the study has them ``boundaries``, ``widths``, ``ratios``; and ``index.html``,
+a self-contained page with the tables and the PNG figures.
 """
 
 from __future__ import annotations
