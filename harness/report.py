@@ -396,7 +396,8 @@ def parse_formats(text: str | Sequence[str] | None) -> tuple[str, ...]:
     items = [s.strip() for s in (text.split(",") if isinstance(text, str) else text) if s.strip()]
     bad = [s for s in items if s not in FORMATS]
     if bad or not items:
-        msg = f"`--format` must be a comma-separated subset of {','.join(FORMATS)}, got {text!r}."
+        got = ",".join(bad) if bad else "nothing"
+        msg = f"`--format` must be a comma-separated subset of {','.join(FORMATS)}, got {got}."
         raise InputError(msg)
     return tuple(dict.fromkeys(items))
 
