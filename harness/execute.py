@@ -31,7 +31,8 @@ from dataclasses import dataclass, replace
 from .errors import InputError
 from .runs import RunRecord, RunTask
 
-__all__ = ["execute", "failed_record", "hard_timeout", "parse_shard", "shard", "shard_index", "task_key"]
+__all__ = ["execute", "failed_record", "hard_timeout", "parse_shard", "shard", "shard_index", "shutdown_pools",
+           "task_key"]
 
 #: Modules the fork server imports once, so that each new worker starts warm.
 PRELOAD = ["numpy", "scipy.sparse", "sympy", "harness.runs", "harness.case", "harness.model", "harness.simulate",
@@ -230,8 +231,7 @@ def execute(tasks: Sequence[RunTask], store, *, key_of: Callable[[RunTask], str]
                     warnings.warn("`timeout` is not enforced inline (`workers=0`)", stacklevel=2)
                 _run_inline(list(todo.values()), book, run, wall_limit)
             else:
-                n = min(workers or os.cpu_count() or 1, len(todo))
-                _run_pool(list(todo.values()), book, n, run, wall_limit, timeout)
+                _run_pool(list(todo.values()), book, workers or os.cpu_count() or 1, run, wall_limit, timeout)
     finally:
         bar.close()
     records = {**dict(zip(stored, store.get_many(stored))), **book.done}
@@ -264,25 +264,40 @@ def _pool_context():
     return multiprocessing.get_context("spawn")
 
 
-def _new_pool(n: int):
+_POOLS: dict[int, object] = {}
+
+
+def _pool(n: int):
+    """A pool of ``n`` workers, kept across calls so that workers (and their compiled models) stay warm."""
     from concurrent.futures import ProcessPoolExecutor
 
-    return ProcessPoolExecutor(max_workers=n, mp_context=_pool_context(), initializer=_ignore_sigint)
+    if n not in _POOLS:
+        _POOLS[n] = ProcessPoolExecutor(max_workers=n, mp_context=_pool_context(), initializer=_ignore_sigint)
+    return _POOLS[n]
 
 
-def _kill_pool(pool) -> dict[int, int | None]:
-    """Kill the pool's worker processes (the only way to stop a stuck run) and drop the pool."""
-    procs = list((getattr(pool, "_processes", None) or {}).values())
-    for p in procs:
+def shutdown_pools() -> None:
+    """Stop the kept worker pools (they also stop when the driver exits)."""
+    while _POOLS:
+        _POOLS.popitem()[1].shutdown(wait=True, cancel_futures=True)
+
+
+def _kill_pool(n: int) -> None:
+    """Kill the workers of pool ``n`` (the only way to stop a stuck run) and forget the pool."""
+    pool = _POOLS.pop(n, None)
+    if pool is None:
+        return
+    for p in list((getattr(pool, "_processes", None) or {}).values()):
         if p.is_alive():
             p.kill()
     pool.shutdown(wait=True, cancel_futures=True)
-    return {p.pid: p.exitcode for p in procs}
 
 
 def _exit_codes(pool) -> str:
     """How the pool's dead workers ended, e.g. ``killed by SIGKILL`` (best effort)."""
     out = []
+    if pool is None:
+        return "a worker process died"
     for p in list((getattr(pool, "_processes", None) or {}).values()):
         code = p.exitcode
         if code is not None and code < 0:
@@ -301,8 +316,7 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
     from concurrent.futures.process import BrokenProcessPool
 
     queue = deque(jobs)
-    inflight: dict = {}  # future -> (job, start)
-    pool = _new_pool(n)
+    inflight: dict = {}  # future -> [job, start or None], in submission order
 
     def settle(fut, job: _Job) -> None:
         kind, value = fut.result()
@@ -315,38 +329,43 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
 
     try:
         while queue or inflight:
-            # step: keep each worker busy with one run (so start times are known); a suspect runs alone
+            # step: keep n runs going and one queued (workers never wait for the driver's store write);
+            # a suspect runs alone
             dead = False  # the pool broke before we noticed (a worker died since the last wait)
-            while queue and len(inflight) < n and not any(j.suspect for j, _ in inflight.values()):
+            while queue and len(inflight) < n + 1 and not any(j.suspect for j, _ in inflight.values()):
                 if queue[0].suspect and inflight:
                     break
                 job = queue.popleft()
                 try:
-                    inflight[pool.submit(_work, run, job.task, wall_limit)] = (job, time.perf_counter())
+                    inflight[_pool(n).submit(_work, run, job.task, wall_limit)] = [job, None]
                 except BrokenProcessPool:
                     queue.appendleft(job)
                     dead = True
                     break
             now = time.perf_counter()
+            for slot in list(inflight.values())[:n]:  # the oldest n are running: start their clocks
+                slot[1] = now if slot[1] is None else slot[1]
             if dead:
                 done, _ = wait(list(inflight), timeout=10.0)
             else:
-                wait_for = None if timeout is None else max(0.0, min(t0 for _, t0 in inflight.values()) + timeout - now)
+                starts = [t0 for _, t0 in inflight.values() if t0 is not None]
+                wait_for = None if timeout is None else max(0.0, min(starts) + timeout - now)
                 done, _ = wait(list(inflight), timeout=wait_for, return_when=FIRST_COMPLETED)
             now = time.perf_counter()
             broken = []
             for fut in done:
                 job, t0 = inflight.pop(fut)
-                job.wall += now - t0
+                job.wall += now - (t0 or now)
                 try:
                     settle(fut, job)
                 except BrokenProcessPool:
                     broken.append(job)
             if broken or dead:
                 # step: a worker died; collect the other runs in flight (finished ones count), then restart
+                why = _exit_codes(_POOLS.get(n))
                 wait(list(inflight), timeout=10.0)
                 for fut, (job, t0) in list(inflight.items()):
-                    job.wall += now - t0
+                    job.wall += now - (t0 or now)
                     try:
                         settle(fut, job)
                     except BrokenProcessPool:
@@ -354,11 +373,7 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
                     except Exception:  # noqa: BLE001 - unfinished after the break: rerun it
                         broken.append(job)
                 inflight.clear()
-                why = _exit_codes(pool)
-                _kill_pool(pool)
-                pool = _new_pool(n)
-                if not broken:
-                    continue
+                _kill_pool(n)
                 if len(broken) == 1:
                     if book.charge(broken[0], f"worker crashed: {why}"):
                         queue.appendleft(broken[0])
@@ -368,22 +383,20 @@ def _run_pool(jobs: list[_Job], book: _Book, n: int, run: RunFunction, wall_limi
                         queue.appendleft(job)
             elif not done and timeout is not None:
                 # step: someone is past the hard limit: kill the workers, charge the late, rerun the rest
-                late = [(f, j) for f, (j, t0) in inflight.items() if now - t0 >= timeout]
-                innocent = [(j, t0) for f, (j, t0) in inflight.items() if now - t0 < timeout]
+                slots = list(inflight.values())
                 inflight.clear()
-                _kill_pool(pool)
-                pool = _new_pool(n)
-                for job, t0 in innocent:
-                    job.wall += now - t0
-                    queue.appendleft(job)
-                for _, job in late:
-                    job.wall += timeout
-                    if book.charge(job, f"timed out after {timeout:g} s"):
+                _kill_pool(n)
+                for job, t0 in reversed(slots):
+                    if t0 is not None and now - t0 >= timeout:
+                        job.wall += timeout
+                        if book.charge(job, f"timed out after {timeout:g} s"):
+                            queue.appendleft(job)
+                    else:
+                        job.wall += now - (t0 or now)
                         queue.appendleft(job)
     except BaseException:
-        _kill_pool(pool)
+        _kill_pool(n)
         raise
-    pool.shutdown(wait=True)
 
 
 def _run_dask(jobs: list[_Job], book: _Book, address: str, run: RunFunction, wall_limit: float | None) -> None:

@@ -266,7 +266,7 @@ def test_sigkill_at_random_moments_then_resume(tmp_path):
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
     rnd = random.Random(20261202)
     stored_counts = []
-    for trial, workers in enumerate([0, 2, 0, 2, 0, 2]):
+    for trial, workers in enumerate([0, 2, 0, 2]):
         store_path, counter = tmp_path / f"s{trial}.h5", tmp_path / f"count{trial}.txt"
         env["RDCHECK_TEST_COUNTER"] = str(counter)
         cmd = [sys.executable, str(script), str(store_path), CASE, str(workers)]
@@ -305,7 +305,7 @@ def test_sigkill_at_random_moments_then_resume(tmp_path):
         for stored, computed in kills:
             assert not stored & set(lines[computed:])
     print("runs stored at each kill:", stored_counts)
-    assert sum(0 < c < 12 for c in stored_counts) >= 6, stored_counts  # most kills land mid-sweep
+    assert sum(0 < c < 12 for c in stored_counts) >= 4, stored_counts  # most kills land mid-sweep
 
 
 # shards ---------------------------------------------------------------------------------------------------
