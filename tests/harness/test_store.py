@@ -191,3 +191,29 @@ def test_merge_studies_narrowest_bracket_and_refusal():
     assert merged["points"][0]["threshold"]["1"]["high"] == 1.5
     with pytest.raises(InputError, match="differ in `case`"):
         merge_studies([a, _study([1], lambda i: [], case="cases/other.toml")])
+
+
+def test_reader_survives_a_consolidation(tmp_path, rng):
+    """A reader opened before a consolidation still reads runs whose pending files were folded away."""
+    r = fake_record(rng, 2)
+    writer = Store(tmp_path / "s.h5")
+    writer.put(r)
+    reader = Store(tmp_path / "s.h5")
+    writer.consolidate()
+    assert_same(reader.get(r.key), r)
+
+
+def test_has_uses_the_cached_keys(tmp_path, rng, monkeypatch):
+    """After opening, `has` answers from memory: no file system access per call."""
+    store = Store(tmp_path / "s.h5")
+    store.put(fake_record(rng, 0))
+    store.consolidate()
+    s = Store(tmp_path / "s.h5")
+
+    def no_disk(*args, **kwargs):
+        msg = "touched the disk"
+        raise AssertionError(msg)
+
+    monkeypatch.setattr("os.scandir", no_disk)
+    monkeypatch.setattr("h5py.File", no_disk)
+    assert s.has("key0000") and not s.has("key0001") and "key0000" in s
