@@ -48,7 +48,10 @@ does). Speed figures are printed by ``benchmarks/bench_solvers.py``, never asser
 
 Conservation: for a row ``w`` with ``w @ f == 0`` every stage satisfies ``sum_i w_i 1^T B u_i = 0`` exactly
 in exact arithmetic (``1^T K = 0``, ``w^T J_r = 0``, for the bounded reaction factor too), for both
-backends, so totals are kept to round-off.
+backends, so totals are kept to round-off: ``F`` forms ``K u`` as a divergence of edge fluxes
+(`MolSystem.stiffness_product`), whose total rounds on the scale of the fluxes; measured drift below 1e-15
+relative over t = 500 on P1 intervals, rectangles and disks (the nodal product ``M^-1 K @ u`` drifted
+4e-10 on a P1 interval).
 """
 
 from __future__ import annotations

@@ -34,6 +34,23 @@ def _check_diffusion(diffusion: np.ndarray) -> np.ndarray:
     return d
 
 
+def _edge_form(stiffness: sp.csr_matrix) -> tuple[sp.csr_matrix, np.ndarray]:
+    """``K = G^T diag(c) G`` for a symmetric ``K`` with zero row sums: ``G`` the signed edge-node incidence.
+
+    Each edge ``(j, k)``, ``j < k``, with ``K_jk != 0`` is a row of ``G`` (``+1`` at ``j``, ``-1`` at
+    ``k``) with conductance ``c = -K_jk``. ``G u`` is then one exact-sign subtraction per edge.
+    """
+    upper = sp.triu(stiffness, k=1).tocoo()
+    keep = upper.data != 0.0
+    rows, cols, vals = upper.row[keep], upper.col[keep], upper.data[keep]
+    e = rows.size
+    grad = sp.csr_matrix(
+        (np.concatenate([np.ones(e), -np.ones(e)]), (np.tile(np.arange(e), 2), np.concatenate([rows, cols]))),
+        shape=(e, stiffness.shape[0]),
+    )
+    return grad, -vals
+
+
 class MolSystem:
     """Method-of-lines operators of one reaction-diffusion model on one discretisation.
 
@@ -71,17 +88,35 @@ class MolSystem:
         # step: block-diagonal diffusion of the mass form, -D_i (M^-1) K for lumped, -D_i K otherwise
         self.diffusion_operator = sp.kron(sp.diags(-self.diffusion), lap, format="csr")
         self.stiffness = stiffness
+        self._edges = _edge_form(stiffness)
         self._build_pattern()
 
     # ---- mass form B du/dt = F(u) --------------------------------------------------------------------
 
     def force(self, u: np.ndarray) -> np.ndarray:
-        """``F(u)`` of the mass form, ``(n, m)``: ``rhs`` for lumped mass, ``-D K u + M f(u)`` otherwise."""
-        diff = (self.diffusion_operator @ u.ravel()).reshape(self.shape)
+        """``F(u)`` of the mass form, ``(n, m)``: ``rhs`` for lumped mass, ``-D K u + M f(u)`` otherwise.
+
+        ``K u`` is formed edge by edge (`stiffness_product`), so that the diffusion part of the total
+        rate is zero up to the rounding of the edge fluxes, not of the nodal values.
+        """
+        ku = self.stiffness_product(u)
         f = np.asarray(self.reaction(u), dtype=float)
         if self.lumped:
-            return diff + f
-        return diff + (self.disc.mass @ f.T).T
+            return -self.diffusion[:, None] * (ku / self.disc.weights) + f
+        return -self.diffusion[:, None] * ku + (self.disc.mass @ f.T).T
+
+    def stiffness_product(self, u: np.ndarray) -> np.ndarray:
+        """``K u_i`` per species, ``(n, m)``, as the divergence of edge fluxes ``c_e (u_j - u_k)``.
+
+        Equal to ``K @ u_i`` in exact arithmetic (``K`` has zero row sums). In floating point every flux
+        enters its two nodes with opposite signs and the same magnitude, and it is rounded on the scale of
+        the difference ``u_j - u_k``, not of ``u``: ``sum_j (K u)_j`` is then zero to the rounding of the
+        sums of fluxes. The nodal product ``K @ u`` instead rounds ``K_jj u_j`` on the scale of ``u`` and
+        on P1 meshes (non-uniform ``K``, ``weights``) leaves a systematic total rate that does not vanish at
+        a steady state (measured: 4e-10 relative drift of a conserved total over t = 500 in 1D).
+        """
+        grad, cond = self._edges
+        return (grad.T @ (cond[:, None] * (grad @ u.T))).T
 
     def apply_mass(self, v: np.ndarray) -> np.ndarray:
         """``B v`` for ``v (n, m)``: ``v`` itself for lumped mass, ``M v_i`` per species otherwise."""
