@@ -41,6 +41,7 @@ __all__ = [
     "SpecialPoint",
     "ThresholdCurve",
     "bialternate_test",
+    "critical_ratio_curve",
     "global_branch",
     "hss_near",
     "local_branch",
@@ -847,6 +848,7 @@ def regime_boundaries(
     hss: Sequence[np.ndarray | None],
     regime_at: Callable[[float, np.ndarray], str],
     *,
+    extra: Sequence[SpecialPoint] = (),
     xtol: float = 1e-10,
 ) -> list[Boundary]:
     """Every place between sweep points where the regime changes, at a special point where one explains it.
@@ -856,11 +858,11 @@ def regime_boundaries(
     neighbours (other special points or the gap's ends) on both sides; a change across a special point puts a
     boundary there (a special point on a sweep value belongs to the gap that ends there), a change anywhere
     else (or in a gap without special points) is located by bisection on ``regime_at`` to ``xtol`` of the
-    sweep's span (``kind="regime"``).
+    sweep's span (``kind="regime"``). ``extra`` special points (cycle folds, say) are tried as well.
     """
     values = np.asarray(values, dtype=float)
     span = float(np.ptp(values)) or 1.0
-    special = diagram.points
+    special = sorted([*diagram.points, *extra], key=lambda pt: pt.parameter)
     out: list[Boundary] = []
     for k in range(len(values) - 1):
         a, b = float(values[k]), float(values[k + 1])
@@ -909,3 +911,23 @@ def regime_boundaries(
                     p1, r1 = mid, rm
             out.append(Boundary(diagram.parameter, 0.5 * (p0 + p1), "regime", (r0, r1), None))
     return out
+
+
+# ---------------------------------------------------------------------------------------------------------
+# The two-parameter picture
+
+
+def critical_ratio_curve(
+    family: Family, branch: Branch, shape: str | None = None, size: float | tuple[float, ...] | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """The linear (Turing) boundary in the plane (sweep parameter, ``rho = max(D_slow) / min(D_fast)``):
+    :func:`harness.linear.critical_ratio` at every continued point of ``branch`` (NaN where no ratio in
+    ``[1e-12, 1]`` destabilises the HSS). As ``rho -> 0`` it meets the spike-limit boundaries, where the
+    local block at a well-mixed-stable HSS turns unstable. Returns ``(parameter, ratio)``."""
+    from .linear import critical_ratio
+
+    ratio = np.full(len(branch.parameter), np.nan)
+    for i, (p, u) in enumerate(zip(branch.parameter, branch.states)):
+        r = critical_ratio(family(float(p)), u, shape, size)
+        ratio[i] = np.nan if r is None else r
+    return branch.parameter.copy(), ratio

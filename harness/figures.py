@@ -7,7 +7,17 @@ from contextlib import contextmanager
 
 import numpy as np
 
-__all__ = ["BRANCH_COLOURS", "FIELD_MAP", "REGIME_SHADES", "plot_prediction", "plot_simulation", "rdcheck_style"]
+__all__ = [
+    "BRANCH_COLOURS",
+    "FIELD_MAP",
+    "POINT_MARKERS",
+    "REGIME_SHADES",
+    "plane_path",
+    "plot_plane",
+    "plot_prediction",
+    "plot_simulation",
+    "rdcheck_style",
+]
 
 #: Branch kinds; hues chosen to stay distinct under the common colour-vision deficiencies.
 BRANCH_COLOURS = {"global": "#1f5f8b", "local": "#c8621b", "periodic": "#6b4c9a"}
@@ -76,37 +86,184 @@ def _shade_regimes(ax, x: np.ndarray, regimes: Sequence[str]) -> None:
                    hatch=hatch, zorder=0)
 
 
-def plot_prediction(case, model, points, path: str) -> None:
-    """States of the first slow species against the sweep parameter, regimes shaded, saved to ``path``."""
+#: Marker shapes of the special points (face white, edge dark): our own choice.
+POINT_MARKERS = {"fold": "D", "hopf": "s", "branch": "o", "cycle-fold": "^"}
+_POINT_EDGE = "#2b2b2b"
+
+
+def _shade_bands(ax, edges: Sequence[float], regimes: Sequence[str]) -> None:
+    """Regime bands between consecutive ``edges`` (``len(regimes) == len(edges) - 1``)."""
+    seen = set()
+    for lo, hi, regime in zip(edges[:-1], edges[1:], regimes):
+        label = regime if regime not in seen else None
+        seen.add(regime)
+        hatch = "//" if regime == "unresolved" else None
+        ax.axvspan(lo, hi, color=REGIME_SHADES.get(regime, "#ffffff"), lw=0, label=label, hatch=hatch, zorder=0)
+
+
+def _boundary_bands(x: np.ndarray, regimes: Sequence[str], boundaries) -> tuple[list[float], list[str]] | None:
+    """Band edges and regimes from the located boundaries, or None where they do not chain the sweep's regimes
+    (then the bands fall back to midpoints between sweep points)."""
+    order = np.argsort(x)
+    xs, rs = x[order], [regimes[i] for i in order]
+    bs = sorted(boundaries, key=lambda b: b.value)
+    edges, bands = [float(xs[0])], [rs[0]]
+    for b in bs:
+        lo, hi = b.between if x[-1] >= x[0] else b.between[::-1]
+        if lo != bands[-1]:
+            return None
+        edges.append(float(b.value))
+        bands.append(hi)
+    edges.append(float(xs[-1]))
+    for xi, ri in zip(xs, rs):  # each sweep point must sit in a band of its own regime
+        k = int(np.searchsorted(edges, xi, side="right")) - 1
+        k = min(max(k, 0), len(bands) - 1)
+        if bands[k] != ri and not any(abs(xi - e) <= 1e-9 * (xs[-1] - xs[0] or 1.0) for e in edges):
+            return None
+    return edges, bands
+
+
+def plane_path(path: str) -> str:
+    """Where `plot_prediction` writes the two-parameter picture: ``FILE`` with ``_plane`` before its suffix."""
+    from pathlib import Path
+
+    p = Path(path)
+    return str(p.with_name(f"{p.stem}_plane{p.suffix}"))
+
+
+def plot_prediction(case, model, points, path: str, diagram=None, boundaries=None, cycles=None) -> None:
+    """The reduced system's bifurcation diagram over the sweep, saved to ``path``, and the two-parameter
+    picture (diffusion ratio against the sweep parameter) to :func:`plane_path` of it.
+
+    The first figure shows the first slow species: the global (HSS) branch and the local branches as
+    continued curves (solid stable, dashed unstable), periodic orbits as max / min envelopes, special points
+    by :data:`POINT_MARKERS`, regimes shaded between the located boundaries. ``diagram``, ``boundaries`` and
+    ``cycles`` are computed when not given (``cycles``: a family of orbits from each Hopf point, at most 30
+    steps each, rtol 1e-8: a picture, not a measurement). Falls back to the states at the sweep points where
+    no diagram can be made (one point).
+    """
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from .predict import _family, predict_boundaries, predict_diagram
+
     slow_index = int(np.flatnonzero(model.slow)[0])
-    local_index = 0
     x = np.array([p.value for p in points])
+    regimes = [p.regime for p in points]
+    diagram = predict_diagram(case, model, points) if diagram is None else diagram
+    if diagram is not None and boundaries is None:
+        boundaries = predict_boundaries(case, model, points, diagram)
+    if diagram is not None and cycles is None:
+        from .periodic import diagram_cycles
+
+        cycles = diagram_cycles(_family(case, model), diagram, (float(x.min()), float(x.max())), max_steps=30,
+                                rtol=1e-8)
     with rdcheck_style():
         fig, ax = plt.subplots()
-        _shade_regimes(ax, x, [p.regime for p in points])
-        hss = np.array([p.hss[slow_index] if p.hss is not None else np.nan for p in points])
-        hss_stable = np.array([bool(p.spike is not None and p.spike.spike_stable and p.spike.well_mixed_stable)
-                               for p in points])
-        _draw_branch(ax, x, hss, hss_stable, BRANCH_COLOURS["global"])
-        for i, p in enumerate(points):
-            if p.spike is None:
-                continue
-            for state in p.spike.local_states:
-                marker = "o" if state.stable else "x"
-                ax.plot(x[i], state.values[local_index], marker, ms=3.2, color=BRANCH_COLOURS["local"],
-                        mfc=BRANCH_COLOURS["local"] if state.stable else "none")
-        ax.plot([], [], "-", color=BRANCH_COLOURS["global"], label="HSS (stable)")
-        ax.plot([], [], "--", color=BRANCH_COLOURS["global"], label="HSS (unstable)")
-        ax.plot([], [], "o", ms=3.2, color=BRANCH_COLOURS["local"], label="local state (stable)")
-        ax.plot([], [], "x", ms=3.2, color=BRANCH_COLOURS["local"], label="local state (unstable)")
+        bands = _boundary_bands(x, regimes, boundaries or []) if diagram is not None else None
+        if bands is None:
+            _shade_regimes(ax, x, regimes)
+        else:
+            _shade_bands(ax, *bands)
+        if diagram is None:
+            _draw_points(ax, x, points, slow_index)
+        else:
+            _draw_diagram(ax, diagram, cycles or (), slow_index)
+        ax.set_xlim(float(x.min()), float(x.max()))
         ax.set_xlabel(case.sweep.parameter)
         ax.set_ylabel(f"{model.species[slow_index]} (slow)")
-        ax.set_title(f"{model.name}: spike-limit states and regimes")
+        ax.set_title(f"{model.name}: reduced-system branches and regimes")
+        ax.legend(loc="center left", bbox_to_anchor=(1.01, 0.5), fontsize=8)
+        fig.savefig(path)
+        plt.close(fig)
+    if diagram is not None:
+        plot_plane(case, model, points, diagram, boundaries or [], plane_path(path))
+
+
+def _draw_points(ax, x: np.ndarray, points, slow_index: int) -> None:
+    """States at the sweep points only (no continuation possible)."""
+    hss = np.array([p.hss[slow_index] if p.hss is not None else np.nan for p in points])
+    stable = np.array([bool(p.spike.spike_stable and p.spike.well_mixed_stable) for p in points])
+    _draw_branch(ax, x, hss, stable, BRANCH_COLOURS["global"])
+    for i, p in enumerate(points):
+        for state in p.spike.local_states:
+            ax.plot(x[i], state.values[0], "o" if state.stable else "x", ms=3.2, color=BRANCH_COLOURS["local"],
+                    mfc=BRANCH_COLOURS["local"] if state.stable else "none")
+    ax.plot([], [], "-", color=BRANCH_COLOURS["global"], label="HSS (stable)")
+    ax.plot([], [], "--", color=BRANCH_COLOURS["global"], label="HSS (unstable)")
+
+
+def _draw_diagram(ax, diagram, cycles, slow_index: int) -> None:
+    """Continued branches, orbit envelopes and special points of the first slow species."""
+    local_index = int(np.sum(diagram.slow[:slow_index]))
+    for b in diagram.branches:
+        if b.kind == "global":
+            _draw_branch(ax, b.parameter, b.states[:, slow_index], b.stable, BRANCH_COLOURS["global"])
+        else:
+            _draw_branch(ax, b.parameter, b.local[:, local_index], b.stable, BRANCH_COLOURS["local"])
+    for fam in cycles:
+        i = slow_index if fam.branch == "global" else local_index
+        for env in (fam.maxima[:, i], fam.minima[:, i]):
+            _draw_branch(ax, fam.parameter, env, fam.stable, BRANCH_COLOURS["periodic"])
+    points = list(diagram.points)
+    for fam in cycles:
+        i = slow_index if fam.branch == "global" else local_index
+        for p in fam.folds:
+            k = int(np.argmin(np.abs(fam.parameter - p)))
+            ax.plot(p, fam.maxima[k, i], POINT_MARKERS["cycle-fold"], ms=5, mfc="white", mec=_POINT_EDGE, zorder=5)
+    for pt in points:
+        y = pt.state[slow_index] if pt.branch == "global" or pt.kind == "branch" else pt.local[local_index]
+        ax.plot(pt.parameter, y, POINT_MARKERS.get(pt.kind, "*"), ms=5, mfc="white", mec=_POINT_EDGE, zorder=5)
+    for name, colour in (("HSS", BRANCH_COLOURS["global"]), ("local state", BRANCH_COLOURS["local"])):
+        ax.plot([], [], "-", color=colour, label=f"{name} (stable)")
+        ax.plot([], [], "--", color=colour, label=f"{name} (unstable)")
+    if cycles:
+        ax.plot([], [], "-", color=BRANCH_COLOURS["periodic"], label="orbit max/min (stable)")
+        ax.plot([], [], "--", color=BRANCH_COLOURS["periodic"], label="orbit max/min (unstable)")
+    kinds = {pt.kind for pt in points} | ({"cycle-fold"} if any(f.folds for f in cycles) else set())
+    for kind in ("fold", "hopf", "branch", "cycle-fold"):
+        if kind in kinds:
+            ax.plot([], [], POINT_MARKERS[kind], ms=5, mfc="white", mec=_POINT_EDGE, ls="none",
+                    label=kind.replace("branch", "branch point"))
+
+
+def plot_plane(case, model, points, diagram, boundaries, path: str) -> None:
+    """The plane (sweep parameter, diffusion ratio ``max(D_slow) / min(D_fast)``): the linear (Turing)
+    boundary on the unbounded line along the continued HSS, the region below it shaded (linearly unstable,
+    well-mixed stable), the spike-limit boundaries (its limit as the ratio goes to 0) on the bottom edge, and
+    the case's own ratio."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from .continuation import critical_ratio_curve
+    from .predict import _family
+
+    p, ratio = critical_ratio_curve(_family(case, model), diagram.branches[0])
+    own = next((pt.linear.ratio for pt in points if pt.linear is not None and pt.linear.ratio), None)
+    floor = 1e-6 if not np.any(np.isfinite(ratio)) else min(1e-6, float(np.nanmin(ratio)) / 10)
+    with rdcheck_style():
+        fig, ax = plt.subplots()
+        ax.set_yscale("log")
+        colour = BRANCH_COLOURS["global"]
+        ax.fill_between(p, floor, np.where(np.isfinite(ratio), ratio, floor), where=np.isfinite(ratio),
+                        color=REGIME_SHADES["self-patterning"], lw=0, label="linearly (Turing) unstable")
+        ax.plot(p, ratio, "-", color=colour, label="critical ratio (line)")
+        for b in boundaries:
+            ax.plot(b.value, floor, POINT_MARKERS.get(b.kind, "*"), ms=6, mfc="white", mec=_POINT_EDGE,
+                    clip_on=False, zorder=5)
+            ax.axvline(b.value, color=_POINT_EDGE, lw=0.6, ls=":", zorder=1)
+        ax.plot([], [], "o", mfc="white", mec=_POINT_EDGE, ls="none", label="spike-limit boundary (ratio -> 0)")
+        if own:
+            ax.axhline(own, color=BRANCH_COLOURS["local"], lw=1.0, ls="--", label=f"case ratio {own:.3g}")
+        ax.set_ylim(floor, 1.0)
+        ax.set_xlim(float(np.min(p)), float(np.max(p)))
+        ax.set_xlabel(case.sweep.parameter)
+        ax.set_ylabel("max(D_slow) / min(D_fast)")
+        ax.set_title(f"{model.name}: linear boundary and spike limit")
         ax.legend(loc="center left", bbox_to_anchor=(1.01, 0.5), fontsize=8)
         fig.savefig(path)
         plt.close(fig)

@@ -25,7 +25,15 @@ from scipy.integrate import solve_ivp
 from .continuation import Diagram, Family, SpecialPoint, _cached, _correct, _Curve, _locate, _tangent, hss_near
 from .kinetics import conserved_basis
 
-__all__ = ["CycleFamily", "VectorField", "cycles_from_hopf", "diagram_cycles", "global_field", "local_field"]
+__all__ = [
+    "CycleFamily",
+    "VectorField",
+    "cycle_fold_points",
+    "cycles_from_hopf",
+    "diagram_cycles",
+    "global_field",
+    "local_field",
+]
 
 
 @dataclass(frozen=True)
@@ -155,7 +163,9 @@ class _Flow:
     samples: np.ndarray  # (d, k) points along the orbit
 
 
-def _flow(field: VectorField, x0: np.ndarray, period: float, p: float, samples: int = 0) -> _Flow | None:
+def _flow(
+    field: VectorField, x0: np.ndarray, period: float, p: float, samples: int = 0, rtol: float = 1e-10
+) -> _Flow | None:
     """Flow map, monodromy and parameter sensitivity over ``[0, period]`` (variational equations)."""
     d = x0.size
 
@@ -169,7 +179,7 @@ def _flow(field: VectorField, x0: np.ndarray, period: float, p: float, samples: 
     scale = max(1.0, float(np.max(np.abs(x0))))
     t_eval = np.linspace(0.0, period, samples) if samples else None
     with np.errstate(all="ignore"):
-        sol = solve_ivp(rhs, (0.0, period), y0, method="DOP853", rtol=1e-10, atol=1e-12 * scale, t_eval=t_eval)
+        sol = solve_ivp(rhs, (0.0, period), y0, method="DOP853", rtol=rtol, atol=1e-2 * rtol * scale, t_eval=t_eval)
     if sol.status != 0 or not np.all(np.isfinite(sol.y[:, -1])):
         return None
     y = sol.y[:, -1]
@@ -186,6 +196,7 @@ class _Shooting:
     g_ref: np.ndarray
     extra: Callable[[np.ndarray], tuple[float, np.ndarray]] | None = None
     samples: int = 0
+    rtol: float = 1e-10
     memo: dict = field(default_factory=dict)
 
     def flow(self, z: np.ndarray) -> _Flow | None:
@@ -194,7 +205,8 @@ class _Shooting:
         if key not in self.memo:
             d = z.size - 2
             self.memo.clear()
-            self.memo[key] = _flow(self.field, z[:d], float(z[d]), float(z[-1]), self.samples) if z[d] > 0 else None
+            period, p = float(z[d]), float(z[-1])
+            self.memo[key] = _flow(self.field, z[:d], period, p, self.samples, self.rtol) if period > 0 else None
         return self.memo[key]
 
     def parts(self, z: np.ndarray):
@@ -224,10 +236,11 @@ class _Shooting:
         return self.parts(z)[1]
 
 
-def _shooting(vf: VectorField, totals: np.ndarray, z: np.ndarray, extra=None, samples: int = 0) -> _Shooting:
+def _shooting(vf: VectorField, totals: np.ndarray, z: np.ndarray, extra=None, samples: int = 0,
+              rtol: float = 1e-10) -> _Shooting:
     d = z.size - 2
     x = z[:d].copy()
-    return _Shooting(vf, totals, x, vf.rhs(x, float(z[-1])), extra, samples)
+    return _Shooting(vf, totals, x, vf.rhs(x, float(z[-1])), extra, samples, rtol)
 
 
 def _newton(system: _Shooting, z: np.ndarray, tol: float = 1e-11, max_iter: int = 15) -> np.ndarray | None:
@@ -284,11 +297,13 @@ def cycles_from_hopf(
     h_max: float = 0.2,
     max_steps: int = 40,
     samples: int = 256,
+    rtol: float = 1e-10,
 ) -> CycleFamily | None:
     """The family of periodic orbits born at the Hopf point ``(x_h, p_h)`` of angular frequency ``omega``.
 
     ``amplitude`` is that of the first orbit (default 1e-3 of ``max(|x_h|, 1)``); ``samples`` points per
-    orbit give its extrema. Returns None if not even the first orbit converges.
+    orbit give its extrema; ``rtol`` is the integration's (Newton stops at ``100 rtol`` in scaled units).
+    Returns None if not even the first orbit converges.
     """
     x_h = np.asarray(x_h, dtype=float)
     d = x_h.size
@@ -307,7 +322,7 @@ def cycles_from_hopf(
             return float(qr @ (z[:d] - x_h) - e), row
 
         z = np.concatenate([x_h + e * qr, [period0, p_h]])
-        return _newton(_shooting(field, totals, z, extra), z)
+        return _newton(_shooting(field, totals, z, extra, rtol=rtol), z, tol=max(1e-11, 0.1 * rtol))
 
     za, zb = first(eps), first(2 * eps)
     if za is None or zb is None:
@@ -320,10 +335,10 @@ def cycles_from_hopf(
     t /= np.linalg.norm(t)
     ts = [t, t]
     h, reason, folds, fresh = 0.02, f"stopped after {max_steps} steps", [], True
-    flows: list[_Flow | None] = [_flow(field, z[:d], float(z[d]), float(z[-1]), samples + 1) for z in zs]
+    flows: list[_Flow | None] = [_flow(field, z[:d], float(z[d]), float(z[-1]), samples + 1, rtol) for z in zs]
     for _ in range(max_steps):
         y = zs[-1] / scale
-        sysm = _shooting(field, totals, zs[-1], samples=samples + 1)
+        sysm = _shooting(field, totals, zs[-1], samples=samples + 1, rtol=rtol)
 
         def fun(v, s=sysm):
             return s.fun(v * scale)
@@ -335,7 +350,7 @@ def cycles_from_hopf(
             if fresh:  # the tangent under this step's phase reference (it moved with the last orbit)
                 t = _tangent(jac(y), t)
                 fresh = False
-            y_new, iters = _correct(fun, jac, y + h * t, t, tol=1e-8, max_iter=8)
+            y_new, iters = _correct(fun, jac, y + h * t, t, tol=100 * rtol, max_iter=8)
             t_new = None if y_new is None else _tangent(jac(y_new), t)
         except np.linalg.LinAlgError:
             y_new, t_new = None, None
@@ -366,10 +381,10 @@ def cycles_from_hopf(
     zs_arr = np.array(zs)
     tp = np.array([tt[-1] for tt in ts])
     for i in np.flatnonzero(np.sign(tp[:-1]) * np.sign(tp[1:]) < 0):
-        sysm = _shooting(field, totals, zs_arr[i])
+        sysm = _shooting(field, totals, zs_arr[i], rtol=rtol)
         curve = _Curve(z=zs_arr, t=np.array(ts), tests={})
         try:
-            found = _locate(sysm, curve, scale, int(i), lambda z, tt, jz: float(tt[-1]), tol=1e-9)
+            found = _locate(sysm, curve, scale, int(i), lambda z, tt, jz: float(tt[-1]), tol=10 * rtol)
         except np.linalg.LinAlgError:
             found = None
         if found is not None:
@@ -393,15 +408,32 @@ def cycles_from_hopf(
                        stable=np.array(stable), folds=tuple(folds), hopf=hopf, reason=reason)
 
 
-def diagram_cycles(
-    family: Family, diagram: Diagram, p_range: tuple[float, float], **kwargs
-) -> tuple[CycleFamily, ...]:
-    """A family of orbits from every Hopf point of the diagram: well-mixed ones in the full system, local
-    ones in the local dynamics (``kwargs`` go to :func:`cycles_from_hopf`)."""
+def cycle_fold_points(families: tuple[CycleFamily, ...]) -> tuple[SpecialPoint, ...]:
+    """The cycle folds of ``families`` as special points (``kind="cycle-fold"``; ``state`` and ``local`` hold
+    the orbit point nearest the fold, in the family's own variables)."""
     out = []
+    for fam in families:
+        for p in fam.folds:
+            x = fam.start[int(np.argmin(np.abs(fam.parameter - p)))]
+            out.append(SpecialPoint("cycle-fold", fam.branch, float(p), x.copy(), x.copy()))
+    return tuple(out)
+
+
+def diagram_cycles(
+    family: Family, diagram: Diagram, p_range: tuple[float, float], *, branches: tuple[str, ...] = ("global", "local"),
+    **kwargs,
+) -> tuple[CycleFamily, ...]:
+    """A family of orbits from every Hopf point of the diagram on the given ``branches``: well-mixed ones in
+    the full system, local ones in the local dynamics (``kwargs`` go to :func:`cycles_from_hopf`). A Hopf
+    point where an earlier family shrank back to a point is not started again."""
+    out: list[CycleFamily] = []
     glob, loc = global_field(family), None
+    span = p_range[1] - p_range[0]
     for pt in diagram.points:
-        if pt.kind != "hopf" or pt.frequency is None:
+        if pt.kind != "hopf" or pt.frequency is None or pt.branch not in branches:
+            continue
+        if any(f.branch == pt.branch and f.reason.startswith("the orbit shrank")
+               and abs(f.parameter[-1] - pt.parameter) <= 1e-3 * span for f in out):
             continue
         if pt.branch == "global":
             fam = cycles_from_hopf(glob, pt, pt.state, pt.parameter, pt.frequency, p_range, branch="global",

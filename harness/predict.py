@@ -109,8 +109,15 @@ def predict_boundaries(case: Case, model: Model, points: Sequence[PointPredictio
         kin = family(p)
         return spike_analysis(kin, baseline_hss(kin, guess, totals), species, sign).regime
 
+    # step: orbits of the local dynamics (only where a local Hopf point exists): their folds can move a regime
+    extra = ()
+    if any(pt.kind == "hopf" and pt.branch == "local" for pt in diagram.points):
+        from .periodic import cycle_fold_points, diagram_cycles
+
+        values = [p.value for p in points]
+        extra = cycle_fold_points(diagram_cycles(family, diagram, (min(values), max(values)), branches=("local",)))
     return regime_boundaries(diagram, [p.value for p in points], [p.regime for p in points],
-                             [p.hss for p in points], regime_at)
+                             [p.hss for p in points], regime_at, extra=extra)
 
 
 def _num(x: float | None) -> float | None:
