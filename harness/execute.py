@@ -107,9 +107,23 @@ def _work(run: RunFunction, task: RunTask, wall_limit: float | None) -> tuple:
         return ("error", _describe(exc))
 
 
-def _ignore_sigint() -> None:
-    """Workers leave Ctrl-C to the driver, which then shuts them down (and stores nothing half done)."""
+def _worker_init(driver: int) -> None:
+    """Workers leave Ctrl-C to the driver, and exit when the driver is gone (only it could store a result)."""
+    import threading
+
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch() -> None:
+        while True:
+            time.sleep(1.0)
+            try:
+                os.kill(driver, 0)
+            except ProcessLookupError:
+                os._exit(1)
+            except PermissionError:  # the pid was reused by someone else's process: the driver is gone
+                os._exit(1)
+
+    threading.Thread(target=watch, name="rdcheck-driver-watch", daemon=True).start()
 
 
 def _default_run() -> RunFunction:
@@ -278,7 +292,8 @@ def _pool(n: int):
     from concurrent.futures import ProcessPoolExecutor
 
     if n not in _POOLS:
-        _POOLS[n] = ProcessPoolExecutor(max_workers=n, mp_context=_pool_context(), initializer=_ignore_sigint)
+        _POOLS[n] = ProcessPoolExecutor(max_workers=n, mp_context=_pool_context(), initializer=_worker_init,
+                                        initargs=(os.getpid(),))
     return _POOLS[n]
 
 

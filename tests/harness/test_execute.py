@@ -308,6 +308,45 @@ def test_sigkill_at_random_moments_then_resume(tmp_path):
     assert sum(0 < c < 12 for c in stored_counts) >= 4, stored_counts  # most kills land mid-sweep
 
 
+def _session_members(sid: int) -> list[int]:
+    """Live processes of session ``sid`` (from /proc; field 6 of stat is the session id)."""
+    out = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[3]) == sid and fields[0] != "Z":
+            out.append(int(stat.parent.name))
+    return out
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs /proc")
+def test_workers_exit_when_the_driver_is_killed(tmp_path):
+    """SIGKILL of the driver alone leaves no worker behind (they watch for the driver and exit)."""
+    script = tmp_path / "driver.py"
+    script.write_text(DRIVER)
+    store_path = tmp_path / "s.h5"
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "RDCHECK_TEST_COUNTER": str(tmp_path / "count.txt")}
+    proc = subprocess.Popen([sys.executable, str(script), str(store_path), CASE, "2"], cwd=ROOT, env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    pending = Path(f"{store_path}.runs")
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not (pending.is_dir() and any(pending.glob("*.h5"))):
+        time.sleep(0.01)
+    assert proc.poll() is None and len(_session_members(proc.pid)) >= 3  # driver, fork server, workers
+    proc.kill()
+    proc.wait()
+    deadline = time.monotonic() + 20
+    while _session_members(proc.pid) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    left = _session_members(proc.pid)
+    if left:
+        os.killpg(proc.pid, signal.SIGKILL)  # do not leak them into the rest of the suite
+    assert left == []
+
+
 # shards ---------------------------------------------------------------------------------------------------
 def test_shards_partition_and_are_order_independent(rng):
     """The K/N shards are disjoint, cover all tasks, and do not depend on the order of the tasks."""
