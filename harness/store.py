@@ -229,6 +229,8 @@ class Store:
             if entry.name.endswith(".tmp"):
                 os.unlink(entry.path)
         Path(f"{self.path}.tmp").unlink(missing_ok=True)
+        if not self.path.exists():  # so that FILE exists (for `rdcheck report`, `ls`) from the first write on
+            _write_main(self.path, [], [], {})
         self.refresh()
         for k in self._main_keys & {e.name[:-3] for e in os.scandir(self.pending_dir) if e.name.endswith(".h5")}:
             (self.pending_dir / f"{k}.h5").unlink()
@@ -353,11 +355,8 @@ def merge_stores(paths: Sequence[str | os.PathLike], out: str | os.PathLike) -> 
             msg = f"`paths`: no store at {s.path}"
             raise InputError(msg)
     target = Store(out)
-    if target.path.exists() or target.keys() or target.doc_names():
-        target.consolidate()
-    else:
-        target._writer()
-    sources = ([target] if target.path.exists() else []) + [s for s in stores if s.path.resolve() != out.resolve()]
+    target.consolidate()
+    sources = [target] + [s for s in stores if s.path.resolve() != out.resolve()]
     mains = [s.path for s in sources if s.path.exists()]
     pending = [s.pending_dir / f"{k}.h5" for s in sources for k in sorted(s._pending_keys)]
     docs: dict[str, str] = {}

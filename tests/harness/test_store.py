@@ -15,7 +15,7 @@ from harness.store import Store, merge_stores, merge_studies
 def fake_record(rng: np.random.Generator, i: int, outcome: str = "stationary-pattern") -> RunRecord:
     """A record with random arrays of the shapes a 1D run produces (no solver needed)."""
     task = RunTask("cases/demo.toml", ("solver.cells_1d=40",), (("d", 0.05), ("s", 0.1 + 0.01 * i)), "pulse",
-                   1.0 + i, 1, 40, purpose="threshold")
+                   1.0 + i, 1, 40, purpose="threshold", hss=(0.05 + 0.001 * i, 1.25))
     n, rows = 40, 7 + i
     return RunRecord(
         key=f"key{i:04d}", task=task, outcome=outcome, reason="a reason", t_final=123.25 + i,
@@ -45,6 +45,7 @@ def test_round_trip_pending_then_consolidated(tmp_path, rng):
     store = Store(tmp_path / "s.h5")
     for r in recs:
         store.put(r)
+    assert (tmp_path / "s.h5").exists()  # the named file exists from the first write on
     doc = {"points": [{"index": 0, "value": 0.1}], "tolerance": 0.02, "nested": {"a": [1, None, "x"]}}
     store.put_doc("study", doc)
     for s in (store, Store(tmp_path / "s.h5")):
