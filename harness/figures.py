@@ -171,7 +171,8 @@ def plot_prediction(case, model, points, path: str, diagram=None, boundaries=Non
             _draw_points(ax, x, points, slow_index)
         else:
             _draw_diagram(ax, diagram, cycles or (), slow_index)
-        ax.set_xlim(float(x.min()), float(x.max()))
+        if x.max() > x.min():
+            ax.set_xlim(float(x.min()), float(x.max()))
         ax.set_xlabel(case.sweep.parameter)
         ax.set_ylabel(f"{model.species[slow_index]} (slow)")
         ax.set_title(f"{model.name}: reduced-system branches and regimes")
