@@ -4,8 +4,9 @@ the naive alternative, and write the figure.
 The naive alternative locates each regime change by bisection on the point-wise analysis alone (HSS by Newton
 from the neighbouring sweep point, then `spike_analysis`), to 1e-8 of the sweep's span, without any
 continuation; it stops at the first change of label, which near a fold may be a sliver of `unresolved` (slow
-passage past the fold's ghost) rather than the fold itself. Run: ``python benchmarks/bench_continuation.py [--case FILE] [--plot FILE]``; the default case
-is the three-species `ref_1d_two_membrane.toml`, where the full diagram should take under ten seconds.
+passage past the fold's ghost) rather than the fold itself.
+Run: ``python benchmarks/bench_continuation.py [--case FILE] [--plot FILE]``; the default case is the
+three-species `ref_1d_two_membrane.toml`, where the full diagram should take under ten seconds.
 """
 
 from __future__ import annotations
