@@ -11,11 +11,20 @@ from scipy.optimize import brentq
 
 from harness.case import load_case
 from harness.cli import main
-from harness.continuation import bialternate_test, global_branch, reduced_diagram, threshold_curves
-from harness.equilibria import trace_baseline
+from harness.continuation import (
+    bialternate_test,
+    critical_ratio_curve,
+    global_branch,
+    hss_near,
+    reduced_diagram,
+    threshold_curves,
+)
+from harness.equilibria import baseline_hss, trace_baseline
+from harness.figures import plane_path, plot_prediction
 from harness.kinetics import Kinetics
+from harness.linear import critical_ratio
 from harness.model import build_model
-from harness.periodic import VectorField, cycles_from_hopf
+from harness.periodic import VectorField, cycles_from_hopf, diagram_cycles
 from harness.predict import predict_case, predict_diagram
 from harness.spike import local_states
 
@@ -265,3 +274,74 @@ def test_subcritical_hopf_cycle_fold():
     np.testing.assert_allclose(fam.parameter + 2 * r2 - r2**2, 0.0, atol=1e-8)
     inner = r2 < 0.9
     assert not fam.stable[inner].any() and fam.stable[r2 > 1.1].all()
+
+
+def test_linear_boundary_meets_spike_boundary_as_ratio_vanishes():
+    """Approaching the demo's spike branch point at s ~ 0.582 from the spike-unstable (well-mixed-stable) side,
+    the critical diffusion ratio falls to 0; beyond it there is none (DESIGN.md: in the limit D_slow -> 0 the
+    linear and spike instabilities coincide)."""
+    case = load_case(CASES / "demo_1d_membrane_switch.toml")
+    model = build_model(case)
+    points = predict_case(case, model)
+    d = predict_diagram(case, model, points)
+    bp = max((pt for pt in d.points if pt.kind == "branch"), key=lambda pt: pt.parameter)
+    family = lambda p: model.kinetics({**case.parameters, "s": p}, "s")  # noqa: E731
+    ratios = {}
+    for delta in (-1e-2, -1e-3, 1e-3):
+        p = bp.parameter + delta
+        eq = baseline_hss(family(p), hss_near(d, p, bp.state))
+        ratios[delta] = critical_ratio(family(p), eq.state)
+    assert ratios[1e-3] is None
+    assert 0 < ratios[-1e-3] < 0.05 * ratios[-1e-2]
+    p, curve = critical_ratio_curve(family, d.branches[0])
+    assert np.all(np.isnan(curve[(p > bp.parameter) & (p < 0.7)]))
+
+
+def _brusselator_membrane(p: float, a: float = 1.5) -> Kinetics:
+    """Two slow species u, v with Brusselator kinetics (b = p) and a decoupled fast species w' = 1 - w."""
+
+    def reaction(x):
+        u, v, w = x
+        return np.array([a - (p + 1) * u + u**2 * v, p * u - u**2 * v, 1 - w])
+
+    def jacobian(x):
+        u, v, w = x
+        z = np.zeros_like(u)
+        return np.array([[-(p + 1) + 2 * u * v, u**2, z], [p - 2 * u * v, -(u**2), z], [z, z, -np.ones_like(u)]])
+
+    def dparam(x):
+        u, v, w = x
+        return np.array([-u, u, np.zeros_like(u)])
+
+    return Kinetics(species=("u", "v", "w"), diffusion=np.array([0.01, 0.01, 1.0]), slow=np.array([True, True, False]),
+                    conservation=np.zeros((0, 3)), reaction=reaction, jacobian=jacobian, dparam=dparam)
+
+
+def test_local_hopf_and_local_orbits():
+    """With the Brusselator as the local dynamics of two slow species, the local block has its Hopf point at
+    b = 1 + a^2 with frequency a (Prigogine & Lefever 1968; common practice), and the local orbits born there
+    are stable (supercritical) with period near 2 pi / a."""
+    a = 1.5
+    values = np.linspace(2.5, 4.0, 4)
+    hss = [np.array([a, b / a, 1.0]) for b in values]
+    d = reduced_diagram(_brusselator_membrane, "b", values, hss, [[] for _ in values])
+    hopf = [pt for pt in d.points if pt.kind == "hopf" and pt.branch == "local"]
+    assert len(hopf) == 1
+    assert hopf[0].parameter == pytest.approx(1 + a**2, abs=1e-8)
+    assert hopf[0].frequency == pytest.approx(a, rel=1e-7)
+    fams = diagram_cycles(_brusselator_membrane, d, (2.5, 4.0), branches=("local",), max_steps=6)
+    assert len(fams) == 1 and fams[0].branch == "local"
+    fam = fams[0]
+    assert fam.period[0] == pytest.approx(2 * np.pi / a, rel=1e-4)
+    assert np.all(fam.parameter >= 1 + a**2 - 1e-9) and fam.stable.all()
+
+
+@pytest.mark.slow
+def test_predict_plot_writes_both_figures(tmp_path):
+    """`plot_prediction` writes the diagram and its `_plane` twin (Brusselator case: no orbits in range)."""
+    case = load_case(CASES / "ref_1d_brusselator.toml")
+    model = build_model(case)
+    points = predict_case(case, model)
+    out = tmp_path / "diagram.png"
+    plot_prediction(case, model, points, str(out))
+    assert out.stat().st_size > 0 and Path(plane_path(str(out))).stat().st_size > 0
