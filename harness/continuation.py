@@ -918,16 +918,37 @@ def regime_boundaries(
 
 
 def critical_ratio_curve(
-    family: Family, branch: Branch, shape: str | None = None, size: float | tuple[float, ...] | None = None
+    family: Family,
+    branch: Branch,
+    shape: str | None = None,
+    size: float | tuple[float, ...] | None = None,
+    near: Sequence[float] = (),
 ) -> tuple[np.ndarray, np.ndarray]:
     """The linear (Turing) boundary in the plane (sweep parameter, ``rho = max(D_slow) / min(D_fast)``):
-    :func:`harness.linear.critical_ratio` at every continued point of ``branch`` (NaN where no ratio in
-    ``[1e-12, 1]`` destabilises the HSS). As ``rho -> 0`` it meets the spike-limit boundaries, where the
-    local block at a well-mixed-stable HSS turns unstable. Returns ``(parameter, ratio)``."""
+    :func:`harness.linear.critical_ratio` at every continued point of the global ``branch`` and, for each
+    value in ``near`` (spike-limit boundaries, say), at points ``1e-2 ... 1e-4`` of the branch's span either
+    side (HSS interpolated and corrected by Newton); NaN where no ratio in ``[1e-12, 1]`` destabilises the
+    HSS. As ``rho -> 0`` it meets the spike-limit boundaries, where the local block at a well-mixed-stable
+    HSS turns unstable. Returns ``(parameter, ratio)`` sorted by parameter (a branch with a fold folds here).
+    """
     from .linear import critical_ratio
 
-    ratio = np.full(len(branch.parameter), np.nan)
-    for i, (p, u) in enumerate(zip(branch.parameter, branch.states)):
+    k0 = family(float(branch.parameter[0]))
+    w = np.asarray(k0.conservation, dtype=float).reshape(-1, k0.n)
+    system = _build(family, float(branch.parameter[0]), w @ branch.states[0], local=False)
+    span = float(np.ptp(branch.parameter)) or 1.0
+    pairs = list(zip(branch.parameter, branch.states))
+    offsets = span * np.array([1e-2, 3e-3, 1e-3, 3e-4, 1e-4])
+    diag = Diagram(parameter="", species=k0.species, slow=np.asarray(k0.slow, bool), branches=(branch,))
+    for b in near:
+        for p in np.concatenate([b - offsets, b + offsets]):
+            u = hss_near(diag, float(p), branch.states[int(np.argmin(np.abs(branch.parameter - b)))])
+            z = None if u is None else _newton_fixed_p(system, np.concatenate([u, [p]]))
+            if z is not None:
+                pairs.append((float(p), z[:-1]))
+    pairs.sort(key=lambda pu: pu[0])
+    ratio = np.full(len(pairs), np.nan)
+    for i, (p, u) in enumerate(pairs):
         r = critical_ratio(family(float(p)), u, shape, size)
         ratio[i] = np.nan if r is None else r
-    return branch.parameter.copy(), ratio
+    return np.array([p for p, _ in pairs]), ratio

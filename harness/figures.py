@@ -243,7 +243,7 @@ def plot_plane(case, model, points, diagram, boundaries, path: str) -> None:
     from .continuation import critical_ratio_curve
     from .predict import _family
 
-    p, ratio = critical_ratio_curve(_family(case, model), diagram.branches[0])
+    p, ratio = critical_ratio_curve(_family(case, model), diagram.branches[0], near=[b.value for b in boundaries])
     own = next((pt.linear.ratio for pt in points if pt.linear is not None and pt.linear.ratio), None)
     floor = 1e-6 if not np.any(np.isfinite(ratio)) else min(1e-6, float(np.nanmin(ratio)) / 10)
     with rdcheck_style():
