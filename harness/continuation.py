@@ -20,12 +20,16 @@ neutral saddle); and on the global branch the *spike* tests, ``det L`` and the b
 ``L = J[slow, slow]`` at the HSS: ``det L = 0`` is where local branches cross the global one (the HSS's own
 slow values are always a local state), and branch switching there starts them along the null vector of
 ``L``. Local folds are told from global ones by the tangent: at a local fold only ``s`` moves.
+
+Regime boundaries (:func:`regime_boundaries`) put each change of the point-wise regime between two sweep
+points at the special point that explains it, checked by the point-wise analysis either side of it; changes
+that no special point explains are located by bisection. Orbits born at Hopf points: `harness.periodic`.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from functools import lru_cache
 
 import numpy as np
@@ -113,7 +117,6 @@ class Diagram:
     species: tuple[str, ...]
     slow: np.ndarray
     branches: tuple[Branch, ...]
-    cycles: tuple = field(default=())
 
     @property
     def points(self) -> tuple[SpecialPoint, ...]:

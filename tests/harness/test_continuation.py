@@ -345,3 +345,18 @@ def test_predict_plot_writes_both_figures(tmp_path):
     out = tmp_path / "diagram.png"
     plot_prediction(case, model, points, str(out))
     assert out.stat().st_size > 0 and Path(plane_path(str(out))).stat().st_size > 0
+
+
+def test_demo_boundaries_do_not_depend_on_the_sweep_grid():
+    """A coarse, descending sweep of the demo finds the same boundaries (to 1e-8) as the case's own sweep,
+    with `between` in the sweep's order: the boundaries come from the branches, not from the grid."""
+    from harness.predict import predict_boundaries
+
+    fine_case = load_case(CASES / "demo_1d_membrane_switch.toml")
+    coarse_case = load_case(CASES / "demo_1d_membrane_switch.toml", ["sweep.values=[0.7, 0.5, 0.3, 0.25, 0.1]"])
+    model = build_model(fine_case)
+    fine = predict_boundaries(fine_case, model, predict_case(fine_case, model))
+    coarse = predict_boundaries(coarse_case, model, predict_case(coarse_case, model))
+    assert len(fine) == len(coarse) == 3
+    np.testing.assert_allclose(sorted(b.value for b in coarse), [b.value for b in fine], atol=1e-8)
+    assert [tuple(b.between[::-1]) for b in coarse[::-1]] == [tuple(b.between) for b in fine]
