@@ -65,6 +65,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--every-2d", type=int, default=3, metavar="K", help="2D runs on every K-th point (default 3)")
     p.add_argument("--tolerance", type=float, default=0.02, help="relative threshold bracket (default 0.02)")
     p.add_argument("--wall-limit", type=float, metavar="SECONDS", help="per-run wall-time limit")
+    p.add_argument("--widths", metavar="W1,W2,...", help="also measure thresholds at these pulse widths")
+    p.add_argument("--ratios", metavar="R1,R2,...", help="repeat the study at D_slow = R x D_fast")
 
     p = sub.add_parser("report", help="agreement tables and figures from one or more stores")
     p.add_argument("stores", nargs="+", metavar="STORE", help="store file(s); several are merged")
@@ -200,6 +202,21 @@ def _int_list(text: str, option: str, allowed: tuple[int, ...]) -> tuple[int, ..
     return tuple(sorted(set(values)))
 
 
+def _positive_list(text: str | None, option: str) -> tuple[float, ...]:
+    from .errors import InputError
+
+    if text is None:
+        return ()
+    try:
+        values = tuple(float(v) for v in text.split(","))
+    except ValueError:
+        values = ()
+    if not values or not all(0 < v < float("inf") for v in values):
+        msg = f"`{option}`: expected a comma-separated list of positive numbers, got {text!r}"
+        raise InputError(msg)
+    return values
+
+
 @command("validate")
 def _validate(args: argparse.Namespace) -> int:
     from pathlib import Path
@@ -222,7 +239,9 @@ def _validate(args: argparse.Namespace) -> int:
     Path(store).parent.mkdir(parents=True, exist_ok=True)
     options = ValidateOptions(store=store, dims=dims, every_2d=args.every_2d, quick=args.quick,
                               tolerance=args.tolerance, workers=args.workers, scheduler=args.scheduler,
-                              shard=parse_shard(args.shard), wall_limit=args.wall_limit)
+                              shard=parse_shard(args.shard), wall_limit=args.wall_limit,
+                              widths=_positive_list(args.widths, "--widths"),
+                              ratios=_positive_list(args.ratios, "--ratios"))
     study = validate(args.case, args.overrides, options)
     runs = sum(len(r.get("pulses", [])) + 1 for p in study["points"] for r in p["runs"].values())
     sys.stdout.write(f"validated {len(study['points'])} sweep points ({runs} planned runs and searches) "

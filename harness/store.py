@@ -139,7 +139,6 @@ class Store:
                     self._pending_keys.add(entry.name[:-3])
                 elif entry.name.endswith(".json"):
                     self._pending_docs.add(entry.name[:-5])
-        self._pending_keys -= self._main_keys
 
     def keys(self) -> set[str]:
         """All stored run keys."""
@@ -150,7 +149,7 @@ class Store:
         return key in self._main_keys or key in self._pending_keys
 
     def __len__(self) -> int:
-        return len(self._main_keys) + len(self._pending_keys)
+        return len(self.keys())
 
     def __contains__(self, key: object) -> bool:
         return isinstance(key, str) and self.has(key)
@@ -232,8 +231,6 @@ class Store:
         if not self.path.exists():  # so that FILE exists (for `rdcheck report`, `ls`) from the first write on
             _write_main(self.path, [], [], {})
         self.refresh()
-        for k in self._main_keys & {e.name[:-3] for e in os.scandir(self.pending_dir) if e.name.endswith(".h5")}:
-            (self.pending_dir / f"{k}.h5").unlink()
 
     def _run_meta(self) -> dict:
         if self._meta is None:
@@ -241,7 +238,7 @@ class Store:
         return {**self._meta, "created": datetime.now(timezone.utc).isoformat(timespec="seconds")}
 
     def put(self, record: RunRecord) -> None:
-        """Store one run durably (atomic file + fsync); a key already stored is replaced."""
+        """Store one run durably (atomic file + fsync); a key already stored is replaced (the newer wins)."""
         if not _KEY.match(record.key):
             msg = f"`record.key` must be letters, digits, '_' or '-', got {record.key!r}"
             raise ValueError(msg)
@@ -251,7 +248,6 @@ class Store:
         with _h5py().File(tmp, "w") as f:
             _write_run(f, record, self._run_meta())
         _publish(tmp, final)
-        self._main_keys.discard(record.key)
         self._pending_keys.add(record.key)
 
     def put_doc(self, name: str, obj: object) -> None:
@@ -309,23 +305,16 @@ class Store:
 
 
 def _write_main(path: Path, mains: Iterable[Path], runs: Iterable[Path], docs: dict[str, str]) -> None:
-    """Atomically write ``path`` from main files, single-run files and documents (first source of a key wins).
+    """Atomically write ``path`` from single-run files, main files and documents.
 
-    Documents in ``docs`` override those of the main files.
+    The first source of a key wins, single-run (pending, newer) files before main files; documents in
+    ``docs`` override those of the main files.
     """
     h5py = _h5py()
     tmp = Path(f"{path}.tmp")
     with h5py.File(tmp, "w") as out:
         out.attrs["format"] = FORMAT
         dest = out.create_group("runs")
-        for main in mains:
-            with h5py.File(main, "r") as f:
-                for name, value in f.attrs.items():
-                    if name.startswith("doc:") and name not in out.attrs:
-                        out.attrs[name] = value
-                for k in f.get("runs", {}):
-                    if k not in dest:
-                        f.copy(f["runs"][k], dest, name=k)
         for src in runs:
             k = src.name[:-3]
             if k in dest:
@@ -336,6 +325,14 @@ def _write_main(path: Path, mains: Iterable[Path], runs: Iterable[Path], docs: d
                     g.attrs[name] = value
                 for name in f:
                     f.copy(f[name], g, name=name)
+        for main in mains:
+            with h5py.File(main, "r") as f:
+                for name, value in f.attrs.items():
+                    if name.startswith("doc:") and name not in out.attrs:
+                        out.attrs[name] = value
+                for k in f.get("runs", {}):
+                    if k not in dest:
+                        f.copy(f["runs"][k], dest, name=k)
         for name, text in docs.items():
             out.attrs[f"doc:{name}"] = text
     _publish(tmp, path)
@@ -379,7 +376,7 @@ def merge_studies(studies: Sequence[dict]) -> dict:
     ``[height, key]`` pairs sorted by height, and the threshold is the first searched one, a ``bracketed``
     one preferred and among those the narrowest (each bracket is made of real runs, so the narrowest is
     still honest). ``boundaries`` are united by ``(dim, between)`` (narrowest kept), ``widths`` by
-    ``(dim, index)``, ``ratios`` by ``ratio``. Studies of different cases or models are not merged.
+    ``(dim, index, width)``, ``ratios`` by ``(ratio, dim)``. Studies of different cases or models are not merged.
     """
     if not studies:
         msg = "`studies` must not be empty"
@@ -398,7 +395,8 @@ def merge_studies(studies: Sequence[dict]) -> dict:
             points[idx] = p if idx not in points else _merge_point(points[idx], p)
     merged["points"] = [points[i] for i in sorted(points)]
     merged["boundaries"] = _union(studies, "boundaries", lambda b: (b["dim"], tuple(b["between"])), _narrower)
-    for name, ident in (("widths", lambda w: (w["dim"], w["index"])), ("ratios", lambda r: r["ratio"])):
+    for name, ident in (("widths", lambda w: (w["dim"], w["index"], w["width"])),
+                        ("ratios", lambda r: (r["ratio"], r.get("dim", 1)))):
         if any(name in s for s in studies):
             merged[name] = _union(studies, name, ident, lambda a, b: a)
     return merged

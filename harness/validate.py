@@ -44,6 +44,8 @@ class ValidateOptions:
     refine: bool = True
     boundaries: bool = True
     progress: bool = True
+    widths: tuple[float, ...] = ()
+    ratios: tuple[float, ...] = ()
 
 
 def parse_shard(text: str | None) -> tuple[int, int] | None:
@@ -105,7 +107,10 @@ class _Runner:
         self.records: dict[str, RunRecord] = {}
 
     def key(self, task: RunTask) -> str:
-        return run_key(self.case, self.model, task)
+        from .runs import _load
+
+        case, model = _load(task.case_path, tuple(task.overrides))
+        return run_key(case, model, task)
 
     def run(self, tasks: Sequence[RunTask]) -> list[RunRecord]:
         if not tasks:
@@ -133,9 +138,27 @@ def _owned(index: int, value: float, shard: tuple[int, int] | None) -> bool:
 
 def validate(case_path: str, overrides: Sequence[str], options: ValidateOptions,
              store_factory: Callable | None = None) -> dict:
-    """Run the whole validation of a case into ``options.store``; returns the study document."""
-    from .predict import predict_case, prediction_json, pulse_setup
+    """Run the whole validation of a case into ``options.store``; returns the study document.
+
+    With ``options.widths`` the threshold searches are repeated at each pulse width; with ``options.ratios``
+    the study is repeated (without boundary searches) at each diffusion ratio D_slow = ratio x D_fast.
+    """
     from .store import Store
+
+    store = (store_factory or Store)(options.store)
+    study, runner = _study(case_path, overrides, options, store)
+    if options.widths:
+        study["widths"] = _width_study(study, runner, options)
+    if options.ratios:
+        study["ratios"] = _ratio_study(case_path, overrides, options, store)
+    store.put_doc("study", study)
+    store.consolidate()
+    return study
+
+
+def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, store) -> tuple[dict, _Runner]:
+    """Predictions, planned runs, threshold and boundary searches of one case; the study and its runner."""
+    from .predict import predict_case, prediction_json, pulse_setup
 
     case = load_case(case_path, overrides)
     overrides = list(overrides)
@@ -149,7 +172,6 @@ def validate(case_path: str, overrides: Sequence[str], options: ValidateOptions,
     species, sign = pulse_setup(case, model)
     noise_amp = case.noise.amplitude if case.noise else 1e-3
     res = {1: case.solver.cells_1d, 2: case.solver.cells_2d}
-    store = (store_factory or Store)(options.store)
     runner = _Runner(case, model, options, store)
     name = case.sweep.parameter
 
@@ -244,10 +266,11 @@ def validate(case_path: str, overrides: Sequence[str], options: ValidateOptions,
         "points": [entries[i] for i in sorted(entries) if i in owned],
         "boundaries": boundaries,
         "shard": None if options.shard is None else list(options.shard),
+        "pulse_width": case.pulse.width if case.pulse else None,
     }
-    store.put_doc("study", study)
-    store.consolidate()
-    return study
+    runner.searches = {k: (prediction[k[0]], s.cap) for k, s in searches.items()}
+    runner.sign, runner.overrides, runner.res = sign, overrides, res
+    return study, runner
 
 
 def _signature(runner: _Runner, noise: RunTask, pulses: Sequence[RunTask]) -> tuple | None:
@@ -361,3 +384,79 @@ def measure_threshold(case: Case, model: Model, params: dict, dim: int = 1, tol:
     return {"low": None if low is None else sign * low, "high": None if high is None else sign * high,
             "lpa": point.threshold, "status": search.status, "dim": dim, "resolution": resolution,
             "tolerance": tol, "runs": runs}
+
+
+def _run_searches(runner: _Runner, searches: dict, make_task: Callable) -> None:
+    """Advance threshold searches one round of parallel runs at a time until every one is over."""
+    while True:
+        batch = {}
+        for key, s in searches.items():
+            h = s.next_height()
+            if h is not None:
+                batch[key] = (h, make_task(key, h))
+        if not batch:
+            return
+        runner.run([t for _, t in batch.values()])
+        for key, (h, t) in batch.items():
+            searches[key].tell(h, patterned(runner.records[runner.key(t)]))
+
+
+def _width_study(study: dict, runner: _Runner, options: ValidateOptions) -> list[dict]:
+    """Threshold brackets at each pulse width, where the main search ran (same points and dimensions)."""
+    case = runner.case
+    base = [w for w in options.widths if w > 0]
+    searches = {}
+    for (i, d), (_, cap) in runner.searches.items():
+        for w in base:
+            searches[i, d, w] = ThresholdSearch(cap=cap, tol=options.tolerance)
+
+    def make(key, h):
+        i, d, w = key
+        point = runner.searches[i, d][0]
+        return _task(case.path, [*runner.overrides, f"starts.pulse.width={w!r}"], point.params, "pulse",
+                     runner.sign * h, d, runner.res[d], "width", point.hss)
+
+    seeds = [(key, h, make(key, h)) for key, s in searches.items()  # the first round, as in the main plan
+             for h in plan_heights(runner.searches[key[:2]][0].threshold, s.cap)]
+    runner.run([t for _, _, t in seeds])
+    for key, h, t in seeds:
+        searches[key].tell(h, patterned(runner.records[runner.key(t)]))
+    _run_searches(runner, searches, make)
+    return [{"dim": d, "index": i, "width": w, "low": s.low, "high": s.high, "status": s.status}
+            for (i, d, w), s in sorted(searches.items())]
+
+
+def slow_diffusion_overrides(case: Case, model: Model, ratio: float) -> list[str]:
+    """`--set` lines giving the slow species D = ratio x min(D_fast), their own proportions kept."""
+    d = model.diffusion(case.parameters)
+    fast = min(float(v) for v, slow in zip(d, model.slow) if not slow)
+    slow = [(name, float(v)) for name, v, is_slow in zip(model.species, d, model.slow) if is_slow]
+    top = max(v for _, v in slow)
+    return [f"species.{name}.diffusion={ratio * fast * (v / top if top > 0 else 1.0)!r}" for name, v in slow]
+
+
+def _ratio_study(case_path: str, overrides: Sequence[str], options: ValidateOptions, store) -> list[dict]:
+    """The study repeated at each diffusion ratio: agreement fraction and measured / predicted threshold."""
+    from dataclasses import replace
+
+    from .report import agreement_rows
+
+    case = load_case(case_path, overrides)
+    model = build_model(case)
+    sub_options = replace(options, boundaries=False, refine=False, widths=(), ratios=())
+    out = []
+    for ratio in options.ratios:
+        sub, runner = _study(case_path, [*overrides, *slow_diffusion_overrides(case, model, ratio)], sub_options,
+                             store)
+        rows = agreement_rows(sub, runner.records)
+        for d in sub["dims"]:
+            verdicts = [r.get(f"agree_{d}d") for r in rows]
+            decided = [v for v in verdicts if v is not None]
+            ratios = [0.5 * (r[f"threshold_low_{d}d"] + r[f"threshold_high_{d}d"]) / r["threshold_lpa"]
+                      for r in rows if r.get(f"threshold_low_{d}d") is not None
+                      and r.get(f"threshold_high_{d}d") is not None and r.get("threshold_lpa")]
+            out.append({"ratio": ratio, "dim": d, "agree_fraction": sum(decided) / len(decided) if decided else None,
+                        "decided": len(decided), "points": len(rows),
+                        "threshold_ratio": float(np.median(ratios)) if ratios else None,
+                        "thresholds_bracketed": len(ratios)})
+    return out
