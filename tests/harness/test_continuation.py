@@ -347,6 +347,7 @@ def test_predict_plot_writes_both_figures(tmp_path):
     assert out.stat().st_size > 0 and Path(plane_path(str(out))).stat().st_size > 0
 
 
+@pytest.mark.slow
 def test_demo_boundaries_do_not_depend_on_the_sweep_grid():
     """A coarse, descending sweep of the demo finds the same boundaries (to 1e-8) as the case's own sweep,
     with `between` in the sweep's order: the boundaries come from the branches, not from the grid."""
