@@ -106,7 +106,7 @@ def test_stray_tmp_files_ignored_then_removed(tmp_path, rng):
 
 
 def test_duplicates_after_interrupted_consolidation(tmp_path, rng):
-    """A crash between the rename and the removals leaves duplicates: read once, cleaned by the next writer."""
+    """A crash between the rename and the removals leaves duplicates: read once, folded by the next consolidation."""
     r = fake_record(rng, 3)
     store = Store(tmp_path / "s.h5")
     store.put(r)
@@ -119,7 +119,25 @@ def test_duplicates_after_interrupted_consolidation(tmp_path, rng):
     assert len(s) == 1 and len(s.records()) == 1
     assert_same(s.get(r.key), r)
     s.put(fake_record(rng, 4))
-    assert not pending.exists()
+    s.consolidate()
+    assert not pending.exists() and Store(tmp_path / "s.h5").keys() == {"key0003", "key0004"}
+
+
+def test_put_replaces_a_consolidated_run(tmp_path, rng):
+    """Putting a stored key again replaces the run, before and after the next consolidation."""
+    from dataclasses import replace
+
+    r = fake_record(rng, 5)
+    store = Store(tmp_path / "s.h5")
+    store.put(r)
+    store.consolidate()
+    newer = replace(r, outcome="baseline", error="rerun")
+    store.put(newer)
+    assert len(store) == 1
+    for s in (store, Store(tmp_path / "s.h5")):
+        assert_same(s.get(r.key), newer)
+    store.consolidate()
+    assert_same(Store(tmp_path / "s.h5").get(r.key), newer)
 
 
 def test_second_writer_refused(tmp_path, rng):
