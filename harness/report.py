@@ -661,6 +661,10 @@ def plot_widths(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]:
                     ax.plot(e["width"], lo, "^", color=colour, mfc="none")
                 elif hi is not None:
                     ax.plot(e["width"], hi, "v", color=colour)
+            mids = [(e["width"], 0.5 * (e["low"] + e["high"])) for e in mine
+                    if e.get("low") is not None and e.get("high") is not None]
+            if mids:  # brackets are a few per cent wide: a line through their middles shows the trend
+                ax.plot(*zip(*mids), "-o", color=colour, lw=1.0, ms=3.5)
             point = by_index.get(i)
             value = float(point["value"]) if point else float("nan")
             lpa = _prediction_point(study, point).get("threshold") if point else None
