@@ -236,3 +236,58 @@ def test_has_uses_the_cached_keys(tmp_path, rng, monkeypatch):
     monkeypatch.setattr("os.scandir", no_disk)
     monkeypatch.setattr("h5py.File", no_disk)
     assert s.has("key0000") and not s.has("key0001") and "key0000" in s
+
+
+class _Killed(BaseException):
+    """Stands for the process dying at that point (nothing after it runs)."""
+
+
+def test_death_inside_put_leaves_no_half_run(tmp_path, rng, monkeypatch):
+    """Dying halfway through writing a run leaves only a stray temp file: not reported, cleaned up later."""
+    import harness.store as store_mod
+
+    store = Store(tmp_path / "s.h5")
+    store.put(fake_record(rng, 0))
+    real = store_mod._write_run
+
+    def dies_halfway(group, record, meta):
+        group.attrs["summary"] = "{"
+        group.create_dataset("coords", data=record.coords)
+        raise _Killed
+
+    monkeypatch.setattr(store_mod, "_write_run", dies_halfway)
+    with pytest.raises(_Killed):
+        store.put(fake_record(rng, 1))
+    store.close()
+    monkeypatch.setattr(store_mod, "_write_run", real)
+    fresh = Store(tmp_path / "s.h5")
+    assert fresh.keys() == {"key0000"} and len(fresh.records()) == 1
+    fresh.put(fake_record(rng, 2))
+    assert not list((tmp_path / "s.h5.runs").glob("*.tmp"))
+
+
+def test_death_inside_consolidate_keeps_old_main_and_pending(tmp_path, rng, monkeypatch):
+    """Dying before the new main file is renamed in keeps the old main file and every pending run."""
+    import harness.store as store_mod
+
+    recs = [fake_record(rng, i) for i in range(3)]
+    store = Store(tmp_path / "s.h5")
+    store.put(recs[0])
+    store.consolidate()
+    store.put(recs[1])
+    store.put(recs[2])
+
+    def dies(tmp, final):
+        raise _Killed
+
+    monkeypatch.setattr(store_mod, "_publish", dies)
+    with pytest.raises(_Killed):
+        store.consolidate()
+    store.close()
+    monkeypatch.undo()
+    assert (tmp_path / "s.h5.tmp").exists()
+    fresh = Store(tmp_path / "s.h5")
+    for r in recs:
+        assert_same(fresh.get(r.key), r)
+    fresh.consolidate()
+    assert not (tmp_path / "s.h5.tmp").exists() and Store(tmp_path / "s.h5").keys() == {r.key for r in recs}
