@@ -41,6 +41,7 @@ class Model:
     _jacobian: Callable = field(repr=False)
     _diffusion: Callable = field(repr=False)
     _dparam: Mapping[str, Callable] = field(repr=False, default_factory=dict)
+    fingerprint: str = ""
 
     @property
     def n(self) -> int:
@@ -140,11 +141,24 @@ def build_model(case: Case) -> Model:
     sweep = case.sweep.parameter
     dparam = {sweep: _compile([usyms, psyms], [sp.diff(r, psyms[params.index(sweep)]) for r in reactions])}
     return Model(
+        fingerprint=_fingerprint(names, reactions, diffusions, slow),
         name=case.model.name, species=names, parameters=params, reactions=tuple(reactions),
         diffusions=tuple(diffusions), slow=slow, split_reason=reason, conservation=conservation,
         conservation_exact=exact, _reaction=_compile([usyms, psyms], reactions),
         _jacobian=_compile([usyms, psyms], list(jac)), _diffusion=dfun, _dparam=dparam,
     )
+
+
+def _fingerprint(names: Sequence[str], reactions: Sequence, diffusions: Sequence, slow: np.ndarray) -> str:
+    """Hash of the canonical model (SymPy's canonical text of every expression): the model part of run keys."""
+    import hashlib
+    import json
+
+    import sympy as sp
+
+    text = json.dumps({"species": list(names), "reactions": [sp.srepr(r) for r in reactions],
+                       "diffusion": [sp.srepr(d) for d in diffusions], "slow": [bool(x) for x in slow]})
+    return hashlib.sha256(text.encode()).hexdigest()
 
 
 def _parse(path: str, key: str, text: str, table: Mapping[str, object]):

@@ -120,6 +120,15 @@ def predict_boundaries(case: Case, model: Model, points: Sequence[PointPredictio
                              [p.hss for p in points], regime_at, extra=extra)
 
 
+def _boundaries_json(case: Case, model: Model, points: Sequence[PointPrediction]) -> dict:
+    """`boundaries` for the JSON; a numerical failure of the continuation is reported, never a crash."""
+    try:
+        with np.errstate(all="ignore"):
+            return {"boundaries": [b.as_json() for b in predict_boundaries(case, model, points)]}
+    except (ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+        return {"boundaries": [], "boundaries_error": f"continuation failed: {exc}"}
+
+
 def _num(x: float | None) -> float | None:
     """A JSON-safe number: non-finite values become None."""
     if x is None:
@@ -170,7 +179,7 @@ def prediction_json(case: Case, model: Model, points: Sequence[PointPrediction])
         "totals": [float(t) for t in model.totals(case.guess)],
         "domain": {"shape": case.domain.shape, "size": list(case.domain.size)},
         "points": [_point_json(model, p) for p in points],
-        "boundaries": [b.as_json() for b in predict_boundaries(case, model, points)],
+        **_boundaries_json(case, model, points),
     }
 
 

@@ -14,7 +14,7 @@ from functools import lru_cache
 
 import numpy as np
 
-__all__ = ["PATTERNED", "RunRecord", "RunTask", "WallClock", "model_fingerprint", "run_key", "run_task"]
+__all__ = ["PATTERNED", "RunRecord", "RunTask", "WallClock", "run_key", "run_task"]
 
 #: Outcomes that count as "patterned" when judging a start.
 PATTERNED = ("stationary-pattern", "dynamic-pattern")
@@ -98,24 +98,12 @@ class RunRecord:
         }
 
 
-def model_fingerprint(model) -> dict:
-    """The canonical model: species, reactions and diffusion as SymPy's canonical text, conservation rows."""
-    import sympy as sp
-
-    return {
-        "species": list(model.species),
-        "reactions": [sp.srepr(r) for r in model.reactions],
-        "diffusion": [sp.srepr(d) for d in model.diffusions],
-        "slow": [bool(s) for s in model.slow],
-    }
-
-
 def run_key(case, model, task: RunTask) -> str:
     """Content hash of everything that determines a run's result (not its purpose, not the file's path)."""
     from . import __version__
 
     content = {
-        "model": model_fingerprint(model),
+        "model": model.fingerprint,
         "params": {k: float(v) for k, v in sorted(task.params)},
         "guess": {k: float(v) for k, v in sorted(case.guess.items())},
         "start": [task.start_kind, float(task.start_value)],

@@ -250,8 +250,8 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
                                            "refined": refined, "status": s.status}
 
     # step: boundary searches between neighbours whose behaviour differs
-    boundaries = _boundaries(case, model, prediction, plan, runner, options, overrides, owned, sign, noise_amp, res) \
-        if options.boundaries else []
+    boundaries = _boundaries(case, model, prediction, plan, runner, options, overrides, owned, sign, noise_amp, res,
+                             pjson.get("boundaries", [])) if options.boundaries else []
 
     d_slow = max(float(v) for v, s in zip(model.diffusion(case.parameters), model.slow) if s)
     fast = [float(v) for v, s in zip(model.diffusion(case.parameters), model.slow) if not s]
@@ -282,7 +282,8 @@ def _signature(runner: _Runner, noise: RunTask, pulses: Sequence[RunTask]) -> tu
     return (n, any(ps))
 
 
-def _boundaries(case, model, prediction, plan, runner, options, overrides, owned, sign, noise_amp, res) -> list:
+def _boundaries(case, model, prediction, plan, runner, options, overrides, owned, sign, noise_amp, res,
+                located: Sequence[dict] = ()) -> list:
     from .equilibria import baseline_hss
 
     out, searches = [], []
@@ -327,19 +328,22 @@ def _boundaries(case, model, prediction, plan, runner, options, overrides, owned
     for d, i, s, _, _ in searches:
         out.append({"dim": d, "between": [i, i + 1], "low": min(s.left, s.right), "high": max(s.left, s.right),
                     "outcomes": [list(s.sig_left), list(s.sig_right)],
-                    **_predicted_boundaries(prediction, i)})
+                    **_predicted_boundaries(prediction, i, located)})
     return out
 
 
-def _predicted_boundaries(prediction, i: int) -> dict:
-    """Where the spike-limit regime and the linear verdict change between points i and i+1 (midpoint, or the
-    located value where the prediction carries exact boundaries); None where they do not change."""
+def _predicted_boundaries(prediction, i: int, located: Sequence[dict]) -> dict:
+    """Where the spike-limit regime and the linear verdict change between points i and i+1: the located
+    boundary of the prediction's continuation where there is one, else the midpoint; None where neither
+    changes. (The linear value is the midpoint: the verdict is point-wise.)"""
     a, b = prediction[i], prediction[i + 1]
+    lo, hi = sorted((a.value, b.value))
     mid = 0.5 * (a.value + b.value)
+    exact = [float(x["value"]) for x in located if lo <= float(x["value"]) <= hi]
     lin_a = a.linear.turing_unstable if a.linear else None
     lin_b = b.linear.turing_unstable if b.linear else None
-    return {"spike_limit": mid if a.regime != b.regime else None,
-            "linear": mid if lin_a != lin_b else None}
+    spike = (exact[0] if exact else mid) if a.regime != b.regime else None
+    return {"spike_limit": spike, "linear": mid if lin_a != lin_b else None}
 
 
 def measure_threshold(case: Case, model: Model, params: dict, dim: int = 1, tol: float = 0.02,
