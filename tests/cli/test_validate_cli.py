@@ -99,3 +99,44 @@ def test_bad_options_exit_two(capsys):
         assert main(["validate", DEMO, *extra]) == 2
         err = capsys.readouterr().err
         assert err.count("\n") == 1 and extra[0] in err
+
+
+def test_quick_demo_end_to_end(tmp_path, capsys):
+    """`validate --quick` on the demo, then `report`: every point gets a row and a 1D verdict column."""
+    store = tmp_path / "quick.h5"
+    assert main(["validate", DEMO, "--quick", "--workers", "2", "--store", str(store),
+                 "--set", "sweep.values={ start = 0.1, stop = 0.7, num = 7 }"]) == 0
+    rows = _table(store, tmp_path / "report")
+    assert len(rows) == 7
+    assert {r["regime"] for r in rows} >= {"no-pattern", "pulse-triggered", "self-patterning"}
+    assert "noise_2d" not in rows[0]  # --quick runs 1D only
+    capsys.readouterr()
+
+
+def test_diverging_runs_are_recorded_and_the_sweep_finishes(tmp_path, capsys):
+    """A case whose pulse blows up is recorded as `diverged` at that point while the other points finish."""
+    text = Path(DEMO).read_text().replace(
+        'reaction = "c*(k_b + k_f*a**2/(K**2 + a**2)) - k_off*a - mu*a"',
+        'reaction = "c*(k_b + k_f*a**2/(K**2 + a**2)) - k_off*a - mu*a + 100*max(s - 0.5, 0)*max(a - 1.2, 0)**2"')
+    case = tmp_path / "blowup.toml"
+    case.write_text(text)
+    store = tmp_path / "blowup.h5"
+    assert main(["validate", str(case), "--dims", "1", "--workers", "0", "--store", str(store), "--set",
+                 "sweep.values=[0.2, 0.4, 0.6]", "--set", "solver.cells_1d=60"]) == 0
+    rows = {float(r["s"]): r for r in _table(store, tmp_path / "report")}
+    assert set(rows) == {0.2, 0.4, 0.6}
+    assert rows[0.6]["pulse_1d"] == "diverged"
+    assert rows[0.2]["noise_1d"] == "baseline"
+    capsys.readouterr()
+
+
+@pytest.mark.slow
+def test_dask_cluster_gives_the_same_table(study, tmp_path, capsys):
+    """A real Dask LocalCluster gives the same agreement table as the local process pool."""
+    distributed = pytest.importorskip("distributed")
+    _, rows, _ = study
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as c:
+        store = tmp_path / "dask.h5"
+        _validate(store, "--scheduler", c.scheduler_address)
+    assert _table(store, tmp_path / "dask_report") == rows
+    capsys.readouterr()
