@@ -131,7 +131,8 @@ def plane_path(path: str) -> str:
     return str(p.with_name(f"{p.stem}_plane{p.suffix}"))
 
 
-def plot_prediction(case, model, points, path: str, diagram=None, boundaries=None, cycles=None) -> None:
+def plot_prediction(case, model, points, path: str, diagram=None, boundaries=None, cycles=None,
+                    measured=None) -> None:
     """The reduced system's bifurcation diagram over the sweep, saved to ``path``, and the two-parameter
     picture (diffusion ratio against the sweep parameter) to :func:`plane_path` of it.
 
@@ -140,7 +141,8 @@ def plot_prediction(case, model, points, path: str, diagram=None, boundaries=Non
     by :data:`POINT_MARKERS`, regimes shaded between the located boundaries. ``diagram``, ``boundaries`` and
     ``cycles`` are computed when not given (``cycles``: a family of orbits from each Hopf point, at most 30
     steps each, rtol 1e-8: a picture, not a measurement). Falls back to the states at the sweep points where
-    no diagram can be made (one point).
+    no diagram can be made (one point). ``measured`` (from a store, see :func:`_draw_measured`) overlays the
+    PDE outcomes and measured threshold brackets.
     """
     import matplotlib
 
@@ -171,6 +173,8 @@ def plot_prediction(case, model, points, path: str, diagram=None, boundaries=Non
             _draw_points(ax, x, points, slow_index)
         else:
             _draw_diagram(ax, diagram, cycles or (), slow_index)
+        if measured:
+            _draw_measured(ax, points, measured, slow_index)
         if x.max() > x.min():
             ax.set_xlim(float(x.min()), float(x.max()))
         ax.set_xlabel(case.sweep.parameter)
@@ -181,6 +185,30 @@ def plot_prediction(case, model, points, path: str, diagram=None, boundaries=Non
         plt.close(fig)
     if diagram is not None:
         plot_plane(case, model, points, diagram, boundaries or [], plane_path(path))
+
+
+def _draw_measured(ax, points, measured, slow_index: int) -> None:
+    """PDE evidence on the diagram: per sweep value, whether the 1D noise start patterned (a row of markers at
+    the bottom) and the measured 1D threshold bracket drawn at HSS + [low, high], where the spike limit puts
+    the unstable local branch (the basin boundary). ``measured`` maps sweep value -> {"noise": bool | None,
+    "low": float | None, "high": float | None}."""
+    hss = {p.value: p.hss for p in points if p.hss is not None}
+    bottom = ax.get_ylim()[0]
+    shown = set()
+    for value, m in sorted(measured.items()):
+        noise = m.get("noise")
+        if noise is not None:
+            label = "PDE noise start patterns" if noise else "PDE noise start returns"
+            ax.plot(value, bottom, "P" if noise else "_", color="#222222", ms=6, clip_on=False,
+                    label=None if label in shown else label)
+            shown.add(label)
+        lo, hi = m.get("low"), m.get("high")
+        if value in hss and lo is not None and hi is not None:
+            base = float(hss[value][slow_index])
+            label = "PDE threshold, HSS + [low, high]"
+            ax.plot([value, value], [base + lo, base + hi], "-", color="#222222", lw=3.0, solid_capstyle="butt",
+                    label=None if label in shown else label)
+            shown.add(label)
 
 
 def _draw_points(ax, x: np.ndarray, points, slow_index: int) -> None:

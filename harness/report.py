@@ -735,6 +735,43 @@ def write_figures(study: dict, records: dict[str, RunRecord], rows: Sequence[dic
         paths += plot_widths(study, rows, out_dir / "widths")
     if study.get("ratios"):
         paths += plot_ratios(study, out_dir / "ratios")
+    paths += plot_diagram(study, rows, out_dir / "diagram")
+    return paths
+
+
+def plot_diagram(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]:
+    """The reduced system's diagram (`predict --plot`) with the measured 1D outcomes and thresholds overlaid.
+
+    It needs the case file named in the study; where that cannot be read (a report made on another machine)
+    the figure is left out with a warning. Periodic orbits are not drawn here (`predict --plot` draws them).
+    """
+    import warnings
+
+    from .case import load_case
+    from .errors import CaseError
+    from .figures import plane_path, plot_prediction
+    from .model import build_model
+    from .predict import predict_case
+
+    try:
+        case = load_case(study["case"], study.get("overrides", []))
+    except CaseError as exc:
+        warnings.warn(f"diagram left out: {exc}", stacklevel=2)
+        return []
+    model = build_model(case)
+    points = predict_case(case, model)
+    name = study["sweep_parameter"]
+    measured = {}
+    for r in rows:
+        noise = r.get("noise_1d")
+        measured[float(r[name])] = {
+            "noise": None if noise in (None, "unsettled", "diverged") else noise in PATTERNED,
+            "low": r.get("threshold_low_1d"), "high": r.get("threshold_high_1d")}
+    paths = []
+    for ext in ("png", "pdf"):
+        path = stem.with_suffix(f".{ext}")
+        plot_prediction(case, model, points, str(path), cycles=(), measured=measured)
+        paths += [path, Path(plane_path(str(path)))]
     return paths
 
 
