@@ -23,6 +23,7 @@ and then count as one crash here; the hard timeout is not enforced there (the so
 
 from __future__ import annotations
 
+import atexit
 import hashlib
 import multiprocessing
 import os
@@ -298,9 +299,13 @@ def _pool(n: int):
 
 
 def shutdown_pools() -> None:
-    """Stop the kept worker pools (they also stop when the driver exits)."""
+    """Stop the kept worker pools (registered to run when the driver exits, before the interpreter tears
+    down the modules that the pools' own exit hooks need)."""
     while _POOLS:
         _POOLS.popitem()[1].shutdown(wait=True, cancel_futures=True)
+
+
+atexit.register(shutdown_pools)
 
 
 def _kill_pool(n: int) -> None:
