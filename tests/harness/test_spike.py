@@ -9,17 +9,11 @@ from harness.equilibria import Equilibrium, baseline_hss, equilibrium
 from harness.kinetics import Kinetics
 from harness.spike import REGIMES, local_eigenvalues, local_states, spike_analysis
 
+from .plain_kinetics import kinetics
+
 K0 = 0.067  # wave-pinning basal rate, gamma = K = delta = 1 (Mori, Jilkine & Edelstein-Keshet 2008; from memory)
 
 
-def kinetics(f, jac, species, slow, conservation=None) -> Kinetics:
-    """Kinetics from plain numpy callables ``f(u) -> (n, m)`` and ``jac(u) -> (n, n, m)``."""
-    n = len(species)
-    w = np.zeros((0, n)) if conservation is None else np.asarray(conservation, dtype=float).reshape(-1, n)
-    slow = np.asarray(slow, dtype=bool)
-    return Kinetics(
-        species=tuple(species), diffusion=np.where(slow, 0.01, 1.0), slow=slow, conservation=w, reaction=f, jacobian=jac
-    )
 
 
 def membrane(k0: float = K0) -> Kinetics:

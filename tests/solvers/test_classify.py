@@ -49,19 +49,11 @@ def _uniform_oscillation(t: np.ndarray, period: float, spread: float = 0.0) -> H
 def _p1_square(refine: int = 4) -> Discretisation:
     """P1 elements on the unit square (scikit-fem), lumped mass; node graph from the Laplacian."""
     from skfem import Basis, ElementTriP1, MeshTri
-    from skfem.assembly import BilinearForm
-    from skfem.helpers import dot, grad
+
+    from solvers.fem import laplace, mass
 
     mesh = MeshTri.init_sqsymmetric().refined(refine)
     basis = Basis(mesh, ElementTriP1())
-
-    @BilinearForm
-    def laplace(u, v, _):
-        return dot(grad(u), grad(v))
-
-    @BilinearForm
-    def mass(u, v, _):
-        return u * v
 
     weights = np.asarray(mass.assemble(basis).sum(axis=1)).ravel()
     return Discretisation(
