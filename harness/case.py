@@ -122,6 +122,8 @@ class SolverSpec:
     settle_tol: float = 1e-6
     settle_window: float = 50.0
     snapshots: int = 101
+    polish: bool = False
+    stability: bool = False
 
 
 @dataclass(frozen=True)
@@ -431,7 +433,8 @@ def _noise(r: _Reader) -> NoiseSpec:
 
 
 def _solver(r: _Reader) -> SolverSpec:
-    known = ("cells_1d", "cells_2d", "t_end", "rtol", "atol", "method", "settle_tol", "settle_window", "snapshots")
+    known = ("cells_1d", "cells_2d", "t_end", "rtol", "atol", "method", "settle_tol", "settle_window", "snapshots",
+             "polish", "stability")
     r.warn_unknown(known)
     return SolverSpec(
         cells_1d=r.integer("cells_1d", 400, minimum=4),
@@ -443,4 +446,6 @@ def _solver(r: _Reader) -> SolverSpec:
         settle_tol=r.number("settle_tol", 1e-6, positive=True),
         settle_window=r.number("settle_window", 50.0, positive=True),
         snapshots=r.integer("snapshots", 101, minimum=2),
+        polish=r.boolean("polish", False),
+        stability=r.boolean("stability", False),
     )

@@ -69,6 +69,8 @@ class Simulation:
     coords: np.ndarray
     mass_drift: float | None
     wall: float
+    polish: dict | None = None
+    stable: bool | None = None
 
     def to_json(self, species: Sequence[str]) -> dict:
         """The `simulate --json` object: `outcome`, `t_final`, `mass_drift`, and more."""
@@ -93,6 +95,8 @@ class Simulation:
             "steps": int(self.run.nsteps),
             "rejected": int(self.run.nrejected),
             "wall_seconds": self.wall,
+            "polish": self.polish,
+            "stable": self.stable,
         }
 
 
@@ -168,9 +172,40 @@ def simulate(case: Case, model: Model, params: Mapping[str, float], start: Start
     tol = Tolerances.from_solver(sol.rtol, sol.atol, settle_tol=sol.settle_tol, settle_window=sol.settle_window)
     outcome = classify(disc, run.u, run.history, hss, run.status, tol)
     drift = mass_drift(model.conservation, disc.weights, u0, run.u)
+    settled = outcome.outcome in ("baseline", "other-uniform", "stationary-pattern")
+    polished, stable = None, None
+    if sol.polish and settled:
+        polished = _polish(disc, kin, model, u0, run.u)
+    if sol.stability and settled and disc.lumped:
+        stable = _stable(disc, kin, model, run.u)
     return Simulation(params=dict(params), start=start, dim=dim, shape=domain.shape, size=domain.size,
                       resolution=cells, method=method, hss=hss, outcome=outcome, run=run, coords=disc.coords,
-                      mass_drift=drift, wall=time.perf_counter() - t0)
+                      mass_drift=drift, wall=time.perf_counter() - t0, polish=polished, stable=stable)
+
+
+def _polish(disc, kin, model: Model, u0: np.ndarray, u: np.ndarray) -> dict:
+    """Newton on the discrete steady equations (conserved totals of the start held); a summary for JSON."""
+    from solvers.settle import polish
+
+    rows = model.conservation if len(model.conservation) else None
+    totals = None if rows is None else rows @ (u0 @ disc.weights)
+    res = polish(disc, kin.diffusion, kin.reaction, kin.jacobian, u, rows, totals)
+    change = float(np.max(np.abs(res.u - u)) / max(float(np.max(np.abs(u))), 1e-300))
+    return {"success": bool(res.success), "residual": float(res.residual), "iterations": int(res.iterations),
+            "relative_change": change if res.success else None, "message": res.message}
+
+
+def _stable(disc, kin, model: Model, u: np.ndarray) -> bool:
+    """Stability of a settled final state: rightmost eigenvalues of the sparse Jacobian (shift-invert Arnoldi),
+    the conserved zero modes removed."""
+    from solvers.stability import is_stable
+    from solvers.system import MolSystem
+
+    jac = MolSystem(disc, kin.diffusion, kin.reaction, kin.jacobian).jac(0.0, u.ravel())
+    conserved = None
+    if len(model.conservation):
+        conserved = np.stack([np.kron(w, disc.weights) for w in model.conservation], axis=1)
+    return bool(is_stable(jac, conserved=conserved, margin=1e-8))
 
 
 class ProgressBar:

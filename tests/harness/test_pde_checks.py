@@ -116,3 +116,22 @@ def test_short_end_time_is_unsettled_and_blow_up_diverges(tmp_path):
     model = build_model(case)
     sim = simulate(case, model, case.points()[0], Start("pulse", 1.0), hss=np.array([0.0, 1.0]))
     assert sim.outcome.outcome == "diverged"
+
+
+def test_polish_and_stability_of_a_turing_pattern():
+    """Above the Brusselator's onset the settled pattern polishes to a tiny residual and is stable, while the
+    HSS it grew from is unstable (b = 3.05 > b_c = 2.914; Murray 2003; common practice)."""
+    from harness.simulate import _stable
+
+    overrides = ["b=3.05", "solver.cells_1d=200", "solver.t_end=2000", "solver.polish=true", "solver.stability=true"]
+    case = load_case(CASES / "ref_1d_brusselator.toml", overrides)
+    model = build_model(case)
+    sim = simulate(case, model, case.points()[0], Start("noise", 1e-3))
+    assert sim.outcome.outcome == "stationary-pattern"
+    assert sim.polish["success"] and sim.polish["residual"] < 1e-9
+    assert sim.stable is True
+    from solvers.fem import make_discretisation
+
+    disc = make_discretisation("interval", case.domain.size, 200)
+    hss = np.tile(sim.hss[:, None], (1, disc.m))
+    assert _stable(disc, model.kinetics(case.points()[0]), model, hss) is False
