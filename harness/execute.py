@@ -150,9 +150,14 @@ def hard_timeout(wall_limit: float | None) -> float | None:
     return None if wall_limit is None else max(2.0 * wall_limit, wall_limit + 60.0)
 
 
+#: The reason of a record that holds no result; a rerun tries such runs again (the crash may have been the
+#: machine's, not the run's).
+FAILED_REASON = "no result: the run failed"
+
+
 def failed_record(key: str, task: RunTask, error: str, wall: float) -> RunRecord:
     """The record of a run that never produced a result (crash, exception, timeout)."""
-    return RunRecord(key=key, task=task, outcome="unsettled", reason="no result: the run failed", t_final=0.0,
+    return RunRecord(key=key, task=task, outcome="unsettled", reason=FAILED_REASON, t_final=0.0,
                      mass_drift=None, status="failed", steps=0, wall=float(wall), error=error)
 
 
@@ -236,11 +241,13 @@ def execute(tasks: Sequence[RunTask], store, *, key_of: Callable[[RunTask], str]
     timeout = hard_timeout(wall_limit) if timeout is None else float(timeout)
     # step: keys, dedup, what the store already has
     keys = [key_of(t) for t in tasks]
+    present = sorted({k for k in keys if store.has(k)})
+    kept = {r.key: r for r in store.get_many(present) if r.reason != FAILED_REASON}  # failures run again
     todo: dict[str, _Job] = {}
     for k, t in zip(keys, tasks):
-        if not store.has(k) and k not in todo:
+        if k not in kept and k not in todo:
             todo[k] = _Job(k, t)
-    stored = sorted({k for k in keys if k not in todo})
+    stored = sorted(kept)
     total = len(stored) + len(todo)
     bar = tqdm(total=total, initial=len(stored), desc="runs", unit="run", file=sys.stderr,
                disable=not progress or not todo, dynamic_ncols=True, smoothing=0.1)
@@ -255,7 +262,7 @@ def execute(tasks: Sequence[RunTask], store, *, key_of: Callable[[RunTask], str]
                 _run_pool(list(todo.values()), book, workers or os.cpu_count() or 1, run, wall_limit, timeout)
     finally:
         bar.close()
-    records = {**dict(zip(stored, store.get_many(stored))), **book.done}
+    records = {**kept, **book.done}
     return [records[k] for k in keys]
 
 

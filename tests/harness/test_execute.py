@@ -134,7 +134,8 @@ def test_stored_keys_not_recomputed(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("workers", [0, 2])
 def test_exception_retried_once_then_failed(tmp_path, workers):
-    """A run that raises is run twice, then stored as unsettled/failed with the reason; the rest complete."""
+    """A run that raises is run twice, then stored as unsettled/failed with the reason; the rest complete; a
+    rerun tries only the failed one again."""
     counter = tmp_path / "count.txt"
     tasks = fake_tasks(counter, [1, 13, 2, 3])
     store = Store(tmp_path / "s.h5")
@@ -147,7 +148,9 @@ def test_exception_retried_once_then_failed(tmp_path, workers):
     assert [r.status for r in recs] == ["settled", "failed", "settled", "settled"]
     again = execute(tasks, Store(tmp_path / "s.h5"), key_of=fake_key, workers=workers, run=raising_run,
                     progress=False)
-    assert counts(counter)[13] == 2 and again[1].error == bad.error
+    # a rerun tries the failed run again (twice more) and recomputes none of the finished ones
+    assert counts(counter) == {1: 1, 13: 4, 2: 1, 3: 1}
+    assert again[1].status == "failed" and again[1].error == bad.error
 
 
 def test_hard_timeout_retried_once_then_failed(tmp_path):
