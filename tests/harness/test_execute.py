@@ -146,8 +146,7 @@ def test_exception_retried_once_then_failed(tmp_path, workers):
     assert bad.error.startswith("run raised RuntimeError: solver exploded") and "2 attempts" in bad.error
     assert Store(tmp_path / "s.h5").get(bad.key).error == bad.error
     assert [r.status for r in recs] == ["settled", "failed", "settled", "settled"]
-    again = execute(tasks, Store(tmp_path / "s.h5"), key_of=fake_key, workers=workers, run=raising_run,
-                    progress=False)
+    again = execute(tasks, store, key_of=fake_key, workers=workers, run=raising_run, progress=False)
     # a rerun tries the failed run again (twice more) and recomputes none of the finished ones
     assert counts(counter) == {1: 1, 13: 4, 2: 1, 3: 1}
     assert again[1].status == "failed" and again[1].error == bad.error
