@@ -140,3 +140,33 @@ def test_dask_cluster_gives_the_same_table(study, tmp_path, capsys):
         _validate(store, "--scheduler", c.scheduler_address)
     assert _table(store, tmp_path / "dask_report") == rows
     capsys.readouterr()
+
+
+def test_boundaries_widths_ratios_and_wall_limit(tmp_path, capsys):
+    """Boundary brackets lie between the neighbours whose behaviour differs; `--widths` and `--ratios` give
+    their entries and figures; a zero wall-time limit makes every run `unsettled` (never a guessed verdict)."""
+    from harness.store import Store
+
+    store = tmp_path / "extras.h5"
+    assert main(["validate", DEMO, "--dims", "1", "--workers", "0", "--store", str(store),
+                 "--set", "sweep.values=[0.16, 0.24]", "--set", "solver.cells_1d=100",
+                 "--widths", "0.1,1.0", "--ratios", "0.1"]) == 0
+    study = Store(store).get_doc("study")
+    (boundary,) = study["boundaries"]
+    assert 0.16 <= boundary["low"] < boundary["high"] <= 0.24
+    assert boundary["high"] - boundary["low"] <= 0.125 * 0.08 + 1e-12
+    assert boundary["spike_limit"] == pytest.approx(0.19238, abs=1e-4)  # the located fold of the prediction
+    widths = {w["width"]: w for w in study["widths"]}
+    assert set(widths) == {0.1, 1.0} and all(w["status"] == "bracketed" for w in widths.values())
+    assert widths[1.0]["high"] < widths[0.1]["low"]  # a wider pulse needs less height
+    (ratio,) = study["ratios"]
+    assert ratio["ratio"] == 0.1 and ratio["points"] == 2
+    out = tmp_path / "report"
+    assert main(["report", str(store), "--out", str(out)]) == 0
+    assert (out / "widths.png").exists() and (out / "ratios.png").exists() and (out / "boundaries.png").exists()
+    limited = tmp_path / "limited.h5"
+    assert main(["validate", DEMO, "--dims", "1", "--workers", "0", "--store", str(limited), "--wall-limit", "0",
+                 "--set", "sweep.values=[0.4]", "--set", "solver.cells_1d=60"]) == 0
+    outcomes = {r.outcome for r in Store(limited).records()}
+    assert outcomes == {"unsettled"}
+    capsys.readouterr()
