@@ -41,7 +41,8 @@ def test_report_tables_and_figures(study, capsys):
     for col in ("s", "regime", "turing_unstable", "threshold_lpa", "noise_1d", "pulse_1d", "threshold_low_1d",
                 "threshold_high_1d", "agree_1d"):
         assert col in rows[0]
-    for name in ("agreement.csv", "agreement.md", "agreement.tex", "index.html", "regimes.png", "regimes.pdf"):
+    for name in ("agreement.csv", "agreement.md", "agreement.tex", "index.html", "regimes.png", "regimes.pdf",
+                 "diagram.png", "diagram_plane.png"):
         assert (out / name).stat().st_size > 100
     by_s = {float(r["s"]): r for r in rows}
     assert by_s[0.16]["regime"] == "no-pattern" and by_s[0.16]["agree_1d"] == "true"
