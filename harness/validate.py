@@ -6,6 +6,15 @@ The plan per sweep point and dimension: a noise start; pulse starts at heights c
 height) where a pulse can pattern, with a refinement check one grid level finer at the bracket's ends;
 then, between neighbouring points whose PDE behaviour differs, a boundary search (bisection on the sweep
 parameter). Every round of runs goes through the executor and the store, so a rerun recomputes nothing.
+
+The result is the store's "study" document: ``case``, ``overrides``, ``model``, ``sweep_parameter``,
+``species``, ``dims``, ``resolution`` and ``domain`` (per dimension), ``tolerance``, ``diffusion_ratio``,
+``prediction`` (the `predict --json` object), ``points`` (per point: ``index``, ``params``, ``value``,
+``runs[dim] = {"noise": key, "pulses": [[height, key], ...]}``, ``threshold[dim] = {"low", "high",
+"resolution", "refined": {"resolution", "low", "high", "held"} | None, "status"}``), ``boundaries`` (``dim``,
+``between``, ``low``, ``high``, ``outcomes``, ``spike_limit``, ``linear``), and with the options ``widths``
+(``dim``, ``index``, ``width``, ``low``, ``high``, ``status``) and ``ratios`` (``ratio``, ``dim``,
+``agree_fraction``, ``threshold_ratio``, ...). Thresholds are magnitudes along the case's pulse direction.
 """
 
 from __future__ import annotations
