@@ -91,17 +91,23 @@ def test_conserved_zero_mode_decides_verdict_only_when_not_deflated(lumped):
     assert is_stable(jac, mass, conserved=q)
 
 
-def test_deflation_keeps_complex_pairs_and_verdicts():
-    """Three species with one conservation law and an oscillatory pair: deflation keeps the pair exactly."""
+def _oscillatory_system():
+    """Three species on an FV interval with one conservation law and an oscillatory pair: f_1 = -f_2, so
+    c = (1, 1, 0) is conserved; the other two directions oscillate (-0.1 +- 1.36i at k = 0). Returns the sparse
+    Jacobian, mass, the closed-form spectrum without the conserved zero, and the conserved vector."""
     disc = interval_fv(4.0, 50)
-    # f_1 = -f_2, so c = (1, 1, 0) is conserved; the other two directions oscillate (-0.1 +- 1.36i at k = 0)
     reaction = np.array([[-0.2, 0.3, -1.0], [0.2, -0.3, 1.0], [0.0, -2.0, 0.3]])
     diffusion = np.array([0.02, 1.0, 0.05])
     jac = (sp.kron(reaction, disc.mass) - sp.kron(sp.diags(diffusion), disc.stiffness)).tocsr()
     mass = sp.kron(sp.identity(3), disc.mass).tocsr()
     ref = mode_spectrum(reaction, diffusion, sol_fv_laplacian_1d(4.0, 50))
-    ref = ref[np.abs(ref) > 1e-8][:6]
-    q = np.kron([1.0, 1.0, 0.0], disc.weights)
+    return jac, mass, ref[np.abs(ref) > 1e-8], np.kron([1.0, 1.0, 0.0], disc.weights)
+
+
+def test_deflation_keeps_complex_pairs_and_verdicts():
+    """Three species with one conservation law and an oscillatory pair: deflation keeps the pair exactly."""
+    jac, mass, ref, q = _oscillatory_system()
+    ref = ref[:6]
     lam = rightmost_eigenvalues(jac, mass, k=12, conserved=q, shift=1.0)[:6]
     np.testing.assert_allclose(np.sort_complex(lam), np.sort_complex(ref), rtol=1e-8, atol=1e-10)
     assert np.abs(lam.imag).max() > 1.0  # the oscillatory pair is among the rightmost six
@@ -110,14 +116,7 @@ def test_deflation_keeps_complex_pairs_and_verdicts():
 
 def test_radius_certifies_what_was_found():
     """Every eigenvalue within `radius` of the shift is listed; with small ``k`` the pair falls outside it."""
-    disc = interval_fv(4.0, 50)
-    reaction = np.array([[-0.2, 0.3, -1.0], [0.2, -0.3, 1.0], [0.0, -2.0, 0.3]])
-    diffusion = np.array([0.02, 1.0, 0.05])
-    jac = (sp.kron(reaction, disc.mass) - sp.kron(sp.diags(diffusion), disc.stiffness)).tocsr()
-    mass = sp.kron(sp.identity(3), disc.mass).tocsr()
-    ref = mode_spectrum(reaction, diffusion, sol_fv_laplacian_1d(4.0, 50))
-    ref = ref[np.abs(ref) > 1e-8]
-    q = np.kron([1.0, 1.0, 0.0], disc.weights)
+    jac, mass, ref, q = _oscillatory_system()
     for k in (4, 6, 12):
         found = spectrum(jac, mass, k=k, conserved=q, shift=1.0)
         inside = ref[np.abs(ref - found.shift) < found.radius * (1 - 1e-9)]
