@@ -122,8 +122,6 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
 
 def _single_point(case, path: str) -> dict[str, float]:
     """The one parameter point of a call that must run at a single point (`--set` the sweep parameter)."""
-    from .errors import InputError
-
     points = case.points()
     if len(points) != 1:
         name = case.sweep.parameter
@@ -165,14 +163,10 @@ def _threshold(args: argparse.Namespace) -> int:
     from .simulate import ProgressBar
     from .validate import measure_threshold
 
-    if not 0 < args.tolerance < 1:
-        from .errors import InputError
-
-        msg = f"`--tolerance`: expected a number in (0, 1), got {args.tolerance!r}"
-        raise InputError(msg)
+    tolerance = _fraction(args.tolerance, "--tolerance")
     case, model = _load(args)
     params = _single_point(case, args.case)
-    result = measure_threshold(case, model, params, dim=args.dim, tol=args.tolerance,
+    result = measure_threshold(case, model, params, dim=args.dim, tol=tolerance,
                                observers_for=lambda label: (ProgressBar(label),))
     if args.json:
         json.dump(result, sys.stdout, allow_nan=False)
@@ -189,9 +183,15 @@ def _threshold(args: argparse.Namespace) -> int:
     return 0
 
 
-def _int_list(text: str, option: str, allowed: tuple[int, ...]) -> tuple[int, ...]:
-    from .errors import InputError
+def _fraction(value: float, option: str) -> float:
+    """A relative tolerance given on the command line: strictly between 0 and 1."""
+    if not 0 < value < 1:
+        msg = f"`{option}`: expected a number in (0, 1), got {value!r}"
+        raise InputError(msg)
+    return value
 
+
+def _int_list(text: str, option: str, allowed: tuple[int, ...]) -> tuple[int, ...]:
     try:
         values = tuple(int(v) for v in text.split(","))
     except ValueError:
@@ -203,8 +203,6 @@ def _int_list(text: str, option: str, allowed: tuple[int, ...]) -> tuple[int, ..
 
 
 def _positive_list(text: str | None, option: str) -> tuple[float, ...]:
-    from .errors import InputError
-
     if text is None:
         return ()
     try:
@@ -221,25 +219,25 @@ def _positive_list(text: str | None, option: str) -> tuple[float, ...]:
 def _validate(args: argparse.Namespace) -> int:
     from pathlib import Path
 
-    from .errors import InputError
-    from .validate import ValidateOptions, parse_shard, validate
+    from .case import load_case
+    from .execute import parse_shard
+    from .validate import ValidateOptions, validate
 
     dims = _int_list(args.dims, "--dims", (1, 2))
     if args.workers is not None and args.workers < 0:
         msg = f"`--workers`: expected an integer >= 0, got {args.workers}"
         raise InputError(msg)
-    if not 0 < args.tolerance < 1:
-        msg = f"`--tolerance`: expected a number in (0, 1), got {args.tolerance!r}"
-        raise InputError(msg)
+    tolerance = _fraction(args.tolerance, "--tolerance")
     if args.every_2d < 1:
         msg = f"`--every-2d`: expected an integer >= 1, got {args.every_2d}"
         raise InputError(msg)
-    case, _ = _load(args)
+    shard = None if args.shard is None else parse_shard(args.shard)
+    load_case(args.case, args.overrides)  # a bad case file stops here, before anything is written
     store = args.store or str(Path("out") / f"{Path(args.case).stem}.h5")
     Path(store).parent.mkdir(parents=True, exist_ok=True)
     options = ValidateOptions(store=store, dims=dims, every_2d=args.every_2d, quick=args.quick,
-                              tolerance=args.tolerance, workers=args.workers, scheduler=args.scheduler,
-                              shard=parse_shard(args.shard), wall_limit=args.wall_limit,
+                              tolerance=tolerance, workers=args.workers, scheduler=args.scheduler,
+                              shard=shard, wall_limit=args.wall_limit,
                               widths=_positive_list(args.widths, "--widths"),
                               ratios=_positive_list(args.ratios, "--ratios"))
     study = validate(args.case, args.overrides, options)

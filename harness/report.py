@@ -58,7 +58,7 @@ import numpy as np
 
 from .errors import InputError
 from .figures import BRANCH_COLOURS, FIELD_MAP, _shade_regimes, rdcheck_style
-from .runs import PATTERNED, RunRecord
+from .runs import PATTERNED, RunRecord, verdict
 
 __all__ = [
     "DIM_COLOURS",
@@ -765,7 +765,7 @@ def plot_diagram(study: dict, rows: Sequence[dict], stem: Path) -> list[Path]:
     for r in rows:
         noise = r.get("noise_1d")
         measured[float(r[name])] = {
-            "noise": None if noise in (None, "unsettled", "diverged") else noise in PATTERNED,
+            "noise": None if noise is None else verdict(noise),
             "low": r.get("threshold_low_1d"), "high": r.get("threshold_high_1d")}
     paths = []
     for ext in ("png", "pdf"):

@@ -14,13 +14,21 @@ from functools import lru_cache
 
 import numpy as np
 
-__all__ = ["PATTERNED", "RunRecord", "RunTask", "WallClock", "run_key", "run_task"]
+__all__ = ["INCONCLUSIVE", "PATTERNED", "RunRecord", "RunTask", "WallClock", "run_key", "run_task", "verdict"]
 
 #: Outcomes that count as "patterned" when judging a start.
 PATTERNED = ("stationary-pattern", "dynamic-pattern")
 
+#: Outcomes that say nothing about whether a start patterns.
+INCONCLUSIVE = ("unsettled", "diverged")
+
 #: History rows kept per record (thinned evenly, first and last kept).
 HISTORY_ROWS = 400
+
+
+def verdict(outcome: str) -> bool | None:
+    """Whether a run with this outcome patterned; None when the outcome gives no verdict."""
+    return None if outcome in INCONCLUSIVE else outcome in PATTERNED
 
 
 @dataclass(frozen=True)

@@ -19,7 +19,6 @@ The result is the store's "study" document: ``case``, ``overrides``, ``model``, 
 
 from __future__ import annotations
 
-import zlib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -28,13 +27,10 @@ import numpy as np
 from .case import Case, load_case
 from .errors import InputError
 from .model import Model, build_model
-from .runs import PATTERNED, RunRecord, RunTask, run_key
+from .runs import RunRecord, RunTask, verdict
 from .search import BoundarySearch, ThresholdSearch
 
-__all__ = ["ValidateOptions", "measure_threshold", "parse_shard", "plan_heights", "validate"]
-
-#: Outcomes that say nothing about whether a start patterns.
-INCONCLUSIVE = ("unsettled", "diverged")
+__all__ = ["ValidateOptions", "measure_threshold", "plan_heights", "validate"]
 
 
 @dataclass(frozen=True)
@@ -55,17 +51,6 @@ class ValidateOptions:
     progress: bool = True
     widths: tuple[float, ...] = ()
     ratios: tuple[float, ...] = ()
-
-
-def parse_shard(text: str | None) -> tuple[int, int] | None:
-    """``K/N`` (1 <= K <= N) -> (K, N); a one-line InputError naming `--shard` otherwise."""
-    if text is None:
-        return None
-    k, sep, n = text.partition("/")
-    if sep and k.isdigit() and n.isdigit() and 1 <= int(k) <= int(n):
-        return int(k), int(n)
-    msg = f"`--shard`: expected K/N with 1 <= K <= N, got {text!r}"
-    raise InputError(msg)
 
 
 def quick_overrides(case: Case) -> list[str]:
@@ -98,38 +83,45 @@ def height_cap(case: Case, model: Model, hss: np.ndarray, lpa: float | None, sig
     return cap
 
 
-def patterned(record: RunRecord) -> bool | None:
-    """Whether a run patterned; None when it gives no verdict."""
-    if record.outcome in INCONCLUSIVE:
-        return None
-    return record.outcome in PATTERNED
-
-
 class _Runner:
     """Runs batches of tasks through the executor into the store, keeping every record by key."""
 
-    def __init__(self, case: Case, model: Model, options: ValidateOptions, store) -> None:
-        from .execute import execute
-
-        self.case, self.model, self.options, self.store = case, model, options, store
-        self._execute = execute
+    def __init__(self, options: ValidateOptions, store) -> None:
+        self.options, self.store = options, store
         self.records: dict[str, RunRecord] = {}
 
-    def key(self, task: RunTask) -> str:
-        from .runs import _load
+    @staticmethod
+    def key(task: RunTask) -> str:
+        from .execute import task_key
 
-        case, model = _load(task.case_path, tuple(task.overrides))
-        return run_key(case, model, task)
+        return task_key(task)
 
     def run(self, tasks: Sequence[RunTask]) -> list[RunRecord]:
+        from .execute import execute
+
         if not tasks:
             return []
         o = self.options
-        out = self._execute(list(tasks), self.store, key_of=self.key, workers=o.workers, scheduler=o.scheduler,
-                            wall_limit=o.wall_limit, progress=o.progress)
+        out = execute(list(tasks), self.store, key_of=self.key, workers=o.workers, scheduler=o.scheduler,
+                      wall_limit=o.wall_limit, progress=o.progress)
         for rec in out:
             self.records[rec.key] = rec
         return out
+
+    def patterned(self, task: RunTask) -> bool | None:
+        """The verdict of a task that was run."""
+        return verdict(self.records[self.key(task)].outcome)
+
+
+@dataclass
+class _Searched:
+    """What the width study needs of a study's threshold searches."""
+
+    case: Case
+    overrides: list[str]
+    sign: int
+    resolution: dict[int, int]
+    points: dict[tuple[int, int], tuple[object, float]]  # (index, dim) -> (PointPrediction, height cap)
 
 
 def _task(case_path: str, overrides: Sequence[str], params: dict, kind: str, value: float, dim: int,
@@ -138,11 +130,11 @@ def _task(case_path: str, overrides: Sequence[str], params: dict, kind: str, val
                    int(resolution), purpose, tuple(float(v) for v in hss))
 
 
-def _owned(index: int, value: float, shard: tuple[int, int] | None) -> bool:
-    if shard is None:
-        return True
-    k, n = shard
-    return zlib.crc32(repr(float(value)).encode()) % n == k - 1
+def _owned(value: float, shard: tuple[int, int] | None) -> bool:
+    """Whether shard ``(K, N)`` owns the sweep point at ``value`` (all points without sharding)."""
+    from .execute import shard_index
+
+    return shard is None or shard_index(repr(float(value)), shard[1]) == shard[0]
 
 
 def validate(case_path: str, overrides: Sequence[str], options: ValidateOptions,
@@ -155,9 +147,9 @@ def validate(case_path: str, overrides: Sequence[str], options: ValidateOptions,
     from .store import Store
 
     store = (store_factory or Store)(options.store)
-    study, runner = _study(case_path, overrides, options, store)
+    study, runner, searched = _study(case_path, overrides, options, store)
     if options.widths:
-        study["widths"] = _width_study(study, runner, options)
+        study["widths"] = _width_study(runner, searched, options)
     if options.ratios:
         study["ratios"] = _ratio_study(case_path, overrides, options, store)
     store.put_doc("study", study)
@@ -165,8 +157,10 @@ def validate(case_path: str, overrides: Sequence[str], options: ValidateOptions,
     return study
 
 
-def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, store) -> tuple[dict, _Runner]:
-    """Predictions, planned runs, threshold and boundary searches of one case; the study and its runner."""
+def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions,
+           store) -> tuple[dict, _Runner, _Searched]:
+    """Predictions, planned runs, threshold and boundary searches of one case; the study, its runner and
+    what the threshold searches ran on."""
     from .predict import predict_case, prediction_json, pulse_setup
 
     case = load_case(case_path, overrides)
@@ -178,14 +172,13 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
     dims = (1,) if options.quick else tuple(options.dims)
     prediction = predict_case(case, model)
     pjson = prediction_json(case, model, prediction)
-    species, sign = pulse_setup(case, model)
+    _, sign = pulse_setup(case, model)
     noise_amp = case.noise.amplitude if case.noise else 1e-3
     res = {1: case.solver.cells_1d, 2: case.solver.cells_2d}
-    runner = _Runner(case, model, options, store)
-    name = case.sweep.parameter
+    runner = _Runner(options, store)
 
     # step: which (point, dim) pairs this call runs
-    owned = [i for i, p in enumerate(prediction) if _owned(i, p.value, options.shard)]
+    owned = [i for i, p in enumerate(prediction) if _owned(p.value, options.shard)]
     needed = sorted(set(owned) | {i + 1 for i in owned if i + 1 < len(prediction)})
     pairs = [(i, d) for i in needed for d in dims if d == 1 or i % options.every_2d == 0 or i == len(prediction) - 1]
 
@@ -215,8 +208,8 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
     for (i, d), (noise, pulses, cap) in plan.items():
         if i not in owned or not pulses:
             continue
-        noise_pat = patterned(runner.records[runner.key(noise)])
-        pulse_pat = [patterned(runner.records[runner.key(t)]) for t in pulses]
+        noise_pat = runner.patterned(noise)
+        pulse_pat = [runner.patterned(t) for t in pulses]
         if prediction[i].regime == "pulse-triggered" or (noise_pat is False and any(pulse_pat)):
             s = ThresholdSearch(cap=cap, tol=options.tolerance)
             for t, pat in zip(pulses, pulse_pat):
@@ -225,20 +218,13 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
         else:
             entries[i]["threshold"][str(d)] = {"low": None, "high": None, "resolution": res[d], "refined": None,
                                                "status": "not-searched"}
-    while True:
-        batch = {}
-        for (i, d), s in searches.items():
-            h = s.next_height()
-            if h is not None:
-                p = prediction[i]
-                batch[i, d] = (h, _task(case.path, overrides, p.params, "pulse", sign * h, d, res[d], "threshold",
-                                        p.hss))
-        if not batch:
-            break
-        runner.run([t for _, t in batch.values()])
-        for (i, d), (h, t) in batch.items():
-            searches[i, d].tell(h, patterned(runner.records[runner.key(t)]))
-            entries[i]["runs"][str(d)]["pulses"].append([t.start_value, runner.key(t)])
+
+    def threshold_task(key: tuple[int, int], h: float) -> RunTask:
+        p, d = prediction[key[0]], key[1]
+        return _task(case.path, overrides, p.params, "pulse", sign * h, d, res[d], "threshold", p.hss)
+
+    for (i, d), t in _run_searches(runner, searches, threshold_task):
+        entries[i]["runs"][str(d)]["pulses"].append([t.start_value, runner.key(t)])
 
     # step: refinement check at the bracket ends, one grid level finer
     refine = {}
@@ -252,7 +238,7 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
         refined = None
         if (i, d) in refine:
             lo_t, hi_t = refine[i, d]
-            lo_p, hi_p = (patterned(runner.records[runner.key(t)]) for t in (lo_t, hi_t))
+            lo_p, hi_p = runner.patterned(lo_t), runner.patterned(hi_t)
             refined = {"resolution": 2 * res[d], "low": s.low, "high": s.high,
                        "held": lo_p is False and hi_p is True}
         entries[i]["threshold"][str(d)] = {"low": s.low, "high": s.high, "resolution": res[d],
@@ -262,10 +248,11 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
     boundaries = _boundaries(case, model, prediction, plan, runner, options, overrides, owned, sign, noise_amp, res,
                              pjson.get("boundaries", [])) if options.boundaries else []
 
-    d_slow = max(float(v) for v, s in zip(model.diffusion(case.parameters), model.slow) if s)
-    fast = [float(v) for v, s in zip(model.diffusion(case.parameters), model.slow) if not s]
+    diffusion = model.diffusion(case.parameters)
+    d_slow = max(float(v) for v, s in zip(diffusion, model.slow) if s)
+    fast = [float(v) for v, s in zip(diffusion, model.slow) if not s]
     study = {
-        "case": case.path, "overrides": overrides, "model": model.name, "sweep_parameter": name,
+        "case": case.path, "overrides": overrides, "model": model.name, "sweep_parameter": case.sweep.parameter,
         "species": list(model.species), "dims": list(dims), "resolution": {str(d): res[d] for d in dims},
         "tolerance": options.tolerance,
         "domain": {str(d): {"shape": case.domain.for_dim(d).shape, "size": list(case.domain.for_dim(d).size)}
@@ -277,15 +264,14 @@ def _study(case_path: str, overrides: Sequence[str], options: ValidateOptions, s
         "shard": None if options.shard is None else list(options.shard),
         "pulse_width": case.pulse.width if case.pulse else None,
     }
-    runner.searches = {k: (prediction[k[0]], s.cap) for k, s in searches.items()}
-    runner.sign, runner.overrides, runner.res = sign, overrides, res
-    return study, runner
+    searched = _Searched(case, overrides, sign, res, {k: (prediction[k[0]], s.cap) for k, s in searches.items()})
+    return study, runner, searched
 
 
 def _signature(runner: _Runner, noise: RunTask, pulses: Sequence[RunTask]) -> tuple | None:
     """PDE behaviour at a point: (noise patterned, some pulse patterned); None if a run gave no verdict."""
-    n = patterned(runner.records[runner.key(noise)])
-    ps = [patterned(runner.records[runner.key(t)]) for t in pulses]
+    n = runner.patterned(noise)
+    ps = [runner.patterned(t) for t in pulses]
     if n is None or any(p is None for p in ps):
         return None
     return (n, any(ps))
@@ -385,7 +371,7 @@ def measure_threshold(case: Case, model: Model, params: dict, dim: int = 1, tol:
             search.tell(h, None)
             runs.append({"height": sign * h, "outcome": "not admissible"})
             return
-        search.tell(h, None if sim.outcome.outcome in INCONCLUSIVE else sim.outcome.outcome in PATTERNED)
+        search.tell(h, verdict(sim.outcome.outcome))
         runs.append({"height": sign * h, "outcome": sim.outcome.outcome})
 
     for h in plan_heights(point.threshold, cap):
@@ -399,8 +385,10 @@ def measure_threshold(case: Case, model: Model, params: dict, dim: int = 1, tol:
             "tolerance": tol, "runs": runs}
 
 
-def _run_searches(runner: _Runner, searches: dict, make_task: Callable) -> None:
-    """Advance threshold searches one round of parallel runs at a time until every one is over."""
+def _run_searches(runner: _Runner, searches: dict, make_task: Callable) -> list[tuple[object, RunTask]]:
+    """Advance threshold searches one round of parallel runs at a time until every one is over; returns the
+    ``(search key, task)`` pairs run, in order."""
+    made = []
     while True:
         batch = {}
         for key, s in searches.items():
@@ -408,32 +396,30 @@ def _run_searches(runner: _Runner, searches: dict, make_task: Callable) -> None:
             if h is not None:
                 batch[key] = (h, make_task(key, h))
         if not batch:
-            return
+            return made
         runner.run([t for _, t in batch.values()])
         for key, (h, t) in batch.items():
-            searches[key].tell(h, patterned(runner.records[runner.key(t)]))
+            searches[key].tell(h, runner.patterned(t))
+            made.append((key, t))
 
 
-def _width_study(study: dict, runner: _Runner, options: ValidateOptions) -> list[dict]:
+def _width_study(runner: _Runner, searched: _Searched, options: ValidateOptions) -> list[dict]:
     """Threshold brackets at each pulse width, where the main search ran (same points and dimensions)."""
-    case = runner.case
-    base = [w for w in options.widths if w > 0]
-    searches = {}
-    for (i, d), (_, cap) in runner.searches.items():
-        for w in base:
-            searches[i, d, w] = ThresholdSearch(cap=cap, tol=options.tolerance)
+    widths = [w for w in options.widths if w > 0]
+    searches = {(i, d, w): ThresholdSearch(cap=cap, tol=options.tolerance)
+                for (i, d), (_, cap) in searched.points.items() for w in widths}
 
     def make(key, h):
         i, d, w = key
-        point = runner.searches[i, d][0]
-        return _task(case.path, [*runner.overrides, f"starts.pulse.width={w!r}"], point.params, "pulse",
-                     runner.sign * h, d, runner.res[d], "width", point.hss)
+        point = searched.points[i, d][0]
+        return _task(searched.case.path, [*searched.overrides, f"starts.pulse.width={w!r}"], point.params, "pulse",
+                     searched.sign * h, d, searched.resolution[d], "width", point.hss)
 
     seeds = [(key, h, make(key, h)) for key, s in searches.items()  # the first round, as in the main plan
-             for h in plan_heights(runner.searches[key[:2]][0].threshold, s.cap)]
+             for h in plan_heights(searched.points[key[:2]][0].threshold, s.cap)]
     runner.run([t for _, _, t in seeds])
     for key, h, t in seeds:
-        searches[key].tell(h, patterned(runner.records[runner.key(t)]))
+        searches[key].tell(h, runner.patterned(t))
     _run_searches(runner, searches, make)
     return [{"dim": d, "index": i, "width": w, "low": s.low, "high": s.high, "status": s.status}
             for (i, d, w), s in sorted(searches.items())]
@@ -459,8 +445,8 @@ def _ratio_study(case_path: str, overrides: Sequence[str], options: ValidateOpti
     sub_options = replace(options, boundaries=False, refine=False, widths=(), ratios=())
     out = []
     for ratio in options.ratios:
-        sub, runner = _study(case_path, [*overrides, *slow_diffusion_overrides(case, model, ratio)], sub_options,
-                             store)
+        sub, runner, _ = _study(case_path, [*overrides, *slow_diffusion_overrides(case, model, ratio)],
+                                sub_options, store)
         rows = agreement_rows(sub, runner.records)
         for d in sub["dims"]:
             verdicts = [r.get(f"agree_{d}d") for r in rows]
