@@ -11,17 +11,27 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
-from .case import Case, load_case  # noqa: E402
-from .errors import CaseError, InputError  # noqa: E402
-from .kinetics import Kinetics, conserved_basis, reduced_eigenvalues  # noqa: E402
-from .linear import linear_analysis  # noqa: E402
-from .model import Model, build_model  # noqa: E402
-from .predict import predict_case, prediction_json  # noqa: E402
-from .simulate import Start, simulate  # noqa: E402
-from .spike import spike_analysis  # noqa: E402
+#: Public name -> the submodule that defines it.
+_EXPORTS = {
+    "Case": "case", "load_case": "case", "CaseError": "errors", "InputError": "errors", "Kinetics": "kinetics",
+    "conserved_basis": "kinetics", "reduced_eigenvalues": "kinetics", "linear_analysis": "linear",
+    "Model": "model", "build_model": "model", "predict_case": "predict", "prediction_json": "predict",
+    "Start": "simulate", "simulate": "simulate", "spike_analysis": "spike",
+}
 
-__all__ = [
-    "Case", "CaseError", "InputError", "Kinetics", "Model", "Start", "__version__", "build_model",
-    "conserved_basis", "linear_analysis", "load_case", "predict_case", "prediction_json", "reduced_eigenvalues",
-    "simulate", "spike_analysis",
-]
+__all__ = ["__version__", *_EXPORTS]
+
+
+def __getattr__(name: str):
+    """Load a public name's module on first use, so that importing one submodule (a worker, the CLI) does
+    not import every other one."""
+    if name in _EXPORTS:
+        from importlib import import_module
+
+        return getattr(import_module(f".{_EXPORTS[name]}", __name__), name)
+    msg = f"module {__name__!r} has no attribute {name!r}"
+    raise AttributeError(msg)
+
+
+def __dir__() -> list[str]:
+    return sorted({*globals(), *_EXPORTS})
