@@ -165,11 +165,8 @@ def simulate(case: Case, model: Model, params: Mapping[str, float], start: Start
     u0 = _initial_state(case, model, disc, hss, start)
     sol = case.solver
     settle = SettleRule(tol=sol.settle_tol, window=sol.settle_window)
-    # The sparse-LU backend everywhere: on long runs to rest the cosine-transform backend was measured to hover
-    # near the steady state without settling (demo, 48x48: 4232 steps unsettled vs 12 steps settled), and the
-    # species-split backend was no faster than LU to settle on a 3169-node demo disk (2.3 s vs 0.9 s, 5.7 vs 5.8).
     run = integrate(disc, kin.diffusion, kin.reaction, kin.jacobian, u0, sol.t_end, rtol=sol.rtol, atol=sol.atol,
-                    settle=settle, snapshots=sol.snapshots, observers=observers, backend="lu")
+                    settle=settle, snapshots=sol.snapshots, observers=observers)
     tol = Tolerances.from_solver(sol.rtol, sol.atol, settle_tol=sol.settle_tol, settle_window=sol.settle_window)
     outcome = classify(disc, run.u, run.history, hss, run.status, tol)
     drift = mass_drift(model.conservation, disc.weights, u0, run.u)
