@@ -99,16 +99,19 @@ def _load(args: argparse.Namespace):
 
 @command("predict")
 def _predict(args: argparse.Namespace) -> int:
-    from .predict import predict_case, prediction_json, prediction_table
+    from .predict import predict_boundaries, predict_case, predict_diagram, prediction_json, prediction_table
 
     case, model = _load(args)
     points = predict_case(case, model)
+    boundaries = None
     if args.plot:
         from .figures import plot_prediction
 
-        plot_prediction(case, model, points, args.plot)
+        diagram = predict_diagram(case, model, points)  # located once, for the figure and the JSON
+        boundaries = predict_boundaries(case, model, points, diagram) if diagram is not None else []
+        plot_prediction(case, model, points, args.plot, diagram=diagram, boundaries=boundaries)
     if args.json:
-        json.dump(prediction_json(case, model, points), sys.stdout, allow_nan=False)
+        json.dump(prediction_json(case, model, points, boundaries), sys.stdout, allow_nan=False)
         sys.stdout.write("\n")
     else:
         sys.stdout.write(prediction_table(case, model, points))

@@ -120,8 +120,11 @@ def predict_boundaries(case: Case, model: Model, points: Sequence[PointPredictio
                              [p.hss for p in points], regime_at, extra=extra)
 
 
-def _boundaries_json(case: Case, model: Model, points: Sequence[PointPrediction]) -> dict:
+def _boundaries_json(case: Case, model: Model, points: Sequence[PointPrediction],
+                     boundaries: Sequence[Boundary] | None = None) -> dict:
     """`boundaries` for the JSON; a numerical failure of the continuation is reported, never a crash."""
+    if boundaries is not None:
+        return {"boundaries": [b.as_json() for b in boundaries]}
     try:
         with np.errstate(all="ignore"):
             return {"boundaries": [b.as_json() for b in predict_boundaries(case, model, points)]}
@@ -166,8 +169,10 @@ def _point_json(model: Model, p: PointPrediction) -> dict:
     }
 
 
-def prediction_json(case: Case, model: Model, points: Sequence[PointPrediction]) -> dict:
-    """The `predict --json` object of DESIGN.md (`points` with `params`, `regime`, `threshold`, `hss`, ...)."""
+def prediction_json(case: Case, model: Model, points: Sequence[PointPrediction],
+                    boundaries: Sequence[Boundary] | None = None) -> dict:
+    """The `predict --json` object of DESIGN.md (`points` with `params`, `regime`, `threshold`, `hss`, ...);
+    ``boundaries`` (from `predict_boundaries`) saves locating them again when the caller has them."""
     return {
         "case": case.path,
         "model": model.name,
@@ -179,7 +184,7 @@ def prediction_json(case: Case, model: Model, points: Sequence[PointPrediction])
         "totals": [float(t) for t in model.totals(case.guess)],
         "domain": {"shape": case.domain.shape, "size": list(case.domain.size)},
         "points": [_point_json(model, p) for p in points],
-        **_boundaries_json(case, model, points),
+        **_boundaries_json(case, model, points, boundaries),
     }
 
 
