@@ -239,8 +239,8 @@ class BandedLU:
         self._half = n if system.lumped else 2 * n - 1  # sub- = super-diagonals of W
         self._rows = 3 * self._half + 1  # LAPACK's ldab: kl extra rows for the pivoting fill
         if system.lumped:
-            pattern = sp.coo_matrix(system.mass_jacobian(np.ones(system.shape)))
-            self._flat = self._positions(pattern.row, pattern.col)
+            indptr, indices = system.pattern
+            self._flat = self._positions(np.repeat(np.arange(n * m), np.diff(indptr)), indices)
             self._diag = self._positions(np.arange(n * m), np.arange(n * m))
         else:
             self._mass = sp.block_diag([system.disc.mass] * n, format="csr")
@@ -257,11 +257,11 @@ class BandedLU:
         """Factorise ``W`` for ``gamma h = gh`` with the Jacobian at ``u`` (None: keep the last one)."""
         sysm = self.system
         if u is not None or self._jac is None:
-            self._jac = sysm.mass_jacobian(u)
+            self._jac = sysm.jacobian_data(u) if sysm.lumped else sysm.mass_jacobian(u)
             self.njev += 1
         band = np.zeros(self._rows * sysm.n * sysm.m)
         if sysm.lumped:
-            band[self._flat] = -gh * self._jac.data
+            band[self._flat] = -gh * self._jac
             band[self._diag] += 1.0
         else:
             w = (self._mass - gh * self._jac).tocoo()
