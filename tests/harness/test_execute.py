@@ -278,7 +278,7 @@ def test_sigkill_at_random_moments_then_resume(tmp_path):
                                     start_new_session=True)
             # step: wait until the driver has stored a random number of runs, then a random moment more
             target = len(kills[-1][0]) + rnd.randint(0, 4) if kills else rnd.randint(0, 8)
-            delay = rnd.uniform(0.0, 0.3)
+            delay = rnd.uniform(0.0, 0.03)  # about one run of 60 cells: longer waits let most sweeps finish
             pending = Path(f"{store_path}.runs")
             deadline = time.monotonic() + 60
             while proc.poll() is None and time.monotonic() < deadline:

@@ -171,6 +171,25 @@ def test_banded_matches_sparse_lu(lumped):
     assert np.linalg.norm(runs[0].u - runs[1].u) < 1e-10 * np.linalg.norm(runs[1].u)
 
 
+@pytest.mark.parametrize("coupling", [0.0, 50.0], ids=["no-swaps", "swaps"])
+def test_banded_solve_with_and_without_row_swaps(coupling, rng):
+    """The banded solve equals a dense solve of W whether the factorisation swapped rows or not (both routes)."""
+    disc = interval_fv(2.0, 30)
+
+    def jac(u):
+        zero = np.zeros(u.shape[1])
+        return np.array([[-1.0 + zero, coupling + zero], [0.5 + zero, -2.0 + zero]])
+
+    system = MolSystem(disc, [0.01, 0.01], lambda u: 0 * u, jac)
+    backend = BACKENDS["banded"](system)
+    u = np.ones(system.shape)
+    backend.update(u, 0.5)
+    assert (backend._triangles is None) == (coupling > 0)
+    r = rng.standard_normal(system.shape)
+    w = np.eye(r.size) - 0.5 * system.mass_jacobian(u).toarray()
+    np.testing.assert_allclose(backend.solve(r).ravel(), np.linalg.solve(w, r.ravel()), rtol=1e-11, atol=1e-12)
+
+
 def test_banded_refuses_a_plane_mesh():
     """The banded backend is for chains of nodes; a rectangle is refused with a message that says so."""
     system = MolSystem(rectangle_fv(1.0, 1.0, 4, 4), D_POL, fun_polarity, jac_polarity)
