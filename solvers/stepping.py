@@ -261,26 +261,27 @@ class BandedLU:
         if u is not None or self._jac is None:
             self._jac = sysm.jacobian_data(u) if sysm.lumped else sysm.mass_jacobian(u)
             self.njev += 1
-        band = np.zeros(self._rows * sysm.n * sysm.m)
+        half, size = self._half, self._rows * sysm.n * sysm.m
+        band = np.zeros(size + 2 * half)  # 2 half spare: room for the shifted view of L below
         if sysm.lumped:
             band[self._flat] = -gh * self._jac
             band[self._diag] += 1.0
         else:
             w = (self._mass - gh * self._jac).tocoo()
             np.add.at(band, self._positions(w.row, w.col), w.data)
-        ab = band.reshape(-1, self._rows).T  # Fortran-ordered (ldab, N) view
-        half = self._half
+        ab = band[:size].reshape(-1, self._rows).T  # Fortran-ordered (ldab, N) view
         lu, piv, info = _gbtrf(ab, half, half, overwrite_ab=True)
         if info != 0:  # an exactly zero pivot; non-finite entries show in the stages and are rejected there
             msg = f"banded factorisation of W failed (LAPACK info {info})"
             raise BackendError(msg)
         self._lu, self._piv = lu, piv
         self._triangles = None
-        if np.array_equal(piv, np.arange(piv.size)):
+        if np.array_equal(piv, np.arange(piv.size)) and np.shares_memory(lu, band):
             # step: no row was swapped, so W = L U with banded L and U: two dtbsv calls solve it in half the
-            # time of dgbtrs, which calls BLAS once per column to apply its interchanges (measured)
-            lower = np.vstack([np.ones((1, lu.shape[1])), lu[2 * half + 1 :]])
-            self._triangles = np.asfortranarray(lower), np.asfortranarray(lu[: 2 * half + 1])
+            # time of dgbtrs, which calls BLAS once per column to apply its interchanges (measured). U is
+            # rows 0 .. 2 half of the factor; L's multipliers, rows 2 half + 1 .., are read through a view
+            # shifted by 2 half entries, whose row 0 (U's diagonal) dtbsv ignores for a unit L
+            self._triangles = band[2 * half :].reshape(-1, self._rows).T, lu
         self.nlu += 1
 
     def solve(self, r: np.ndarray) -> np.ndarray:
@@ -1027,12 +1028,20 @@ class _Recorder:
         self.w = weights / weights.sum()
         self.t, self.mean, self.lo, self.hi, self.rate = [], [], [], [], []
 
-    def add(self, t: float, u: np.ndarray, rate: float) -> None:
+    def add(self, t: float, u: np.ndarray, rate: float) -> float:
+        """Record one row; return ``max |u|`` (non-finite if ``u`` is), which the driver checks for divergence."""
+        lo, hi = u.min(axis=1), u.max(axis=1)
         self.t.append(t)
         self.mean.append(u @ self.w)
-        self.lo.append(u.min(axis=1))
-        self.hi.append(u.max(axis=1))
+        self.lo.append(lo)
+        self.hi.append(hi)
         self.rate.append(rate)
+        return float(np.maximum(hi.max(), -lo.min()))  # np.maximum, not max(): NaN must propagate
+
+    def drop_last(self) -> None:
+        """Forget the last row (a diverged state is not part of the history)."""
+        for rows in (self.t, self.mean, self.lo, self.hi, self.rate):
+            rows.pop()
 
     def history(self) -> History:
         return History(np.array(self.t), np.array(self.mean), np.array(self.lo), np.array(self.hi),
@@ -1128,13 +1137,14 @@ def integrate(
                 status = "diverged" if big else "failed"
                 message = f"solver failed: {msg}"
                 break
-            if not np.all(np.isfinite(u)) or np.max(np.abs(u)) > bound:
-                status, message = "diverged", f"|u| exceeded {bound:.3g} (or became non-finite) at t = {solver.t:.6g}"
-                break
             dudt, extra = rate_of(solver)
             extra_fev += extra
             rel = relative_rate(disc.weights, u, dudt, atol)
-            rec.add(solver.t, u, rel)
+            size = rec.add(solver.t, u, rel)
+            if not size <= bound:  # beyond the bound, or NaN / inf (min and max propagate them)
+                rec.drop_last()
+                status, message = "diverged", f"|u| exceeded {bound:.3g} (or became non-finite) at t = {solver.t:.6g}"
+                break
             if next_snap < times.size and times[next_snap] <= solver.t:
                 dense = solver.dense_output()
                 while next_snap < times.size and times[next_snap] <= solver.t:
