@@ -18,13 +18,13 @@ linearly implicit, with the analytic reaction Jacobian. A steady state is a fixe
 ``W`` (``F = 0`` gives ``u_i = 0``), and as the state settles the stages vanish and the step grows by the
 controller's maximum factor (5) per step.
 
-Choice by measurement (this machine, 2 shared cores): on the 1D polarity problem (1000 cells, t = 200)
-ROS34PW2 took 35 steps and 0.043 s at final-state error 2.4e-4 (rtol 1e-3), ROS2 90 steps and 0.063 s at
-error 1.2e-3; on the Fisher-KPP front (1500 cells) 0.24 s against 1.6 s at the same rtol. ROS2's estimate
-is that of a first-order solution and is far too pessimistic at tight tolerances. ROS34PW2 is the default;
-ROS2 stays for comparison and tests. Not implemented: ROS3P (not a W-method), variable-step BDF2 (Newton
-iterations per step), IMEX SBDF2 (explicit reactions: a large step near a steady state can destabilise
-it).
+Choice by measurement (this machine, 2 shared cores, with the sparse-LU backend of the time): on the 1D
+polarity problem (1000 cells, t = 200) ROS34PW2 took 35 steps and 0.043 s at final-state error 2.4e-4 (rtol
+1e-3), ROS2 90 steps and 0.063 s at error 1.2e-3; on the Fisher-KPP front (1500 cells) 0.24 s against 1.6 s
+at the same rtol. ROS2's estimate is that of a first-order solution and is far too pessimistic at tight
+tolerances. ROS34PW2 is the default; ROS2 stays for comparison and tests. Not implemented: ROS3P (not a
+W-method), variable-step BDF2 (Newton iterations per step), IMEX SBDF2 (explicit reactions: a large step
+near a steady state can destabilise it).
 
 Four linear-solve backends (registry `BACKENDS`; ``"split"``, for P1 meshes in 2D, is `SpeciesFactored`):
 
@@ -422,8 +422,9 @@ class SpeciesFactored:
     6.0 s with 3e-3, 6.1 s with ``"lu"`` throughout; settle times differ, 1750 .. 3500, so this is rough).
 
     Measured on the 12481-node P1 disk (benchmark problem, t = 200, rtol 1e-2, one BLAS thread): 13 steps,
-    5 factorisations, 0.85 s at final-state error 5.5e-4; the coupled ``"lu"`` 13 steps, 10 coupled
-    factorisations (twice the cost each), 1.7 s at 3.7e-4; ``krylov=0`` needed rtol 1e-3 and 32 steps.
+    5 factorisations, 0.85 s at final-state error 5.5e-4 (1.0-1.3 s on another day, same code); the coupled
+    ``"lu"`` 13 steps, 10 coupled factorisations (twice the cost each), 1.7 s at 3.7e-4; ``krylov=0`` needed
+    rtol 1e-3 and 32 steps.
     """
 
     cheap_rescale = False
