@@ -18,6 +18,8 @@ def save_simulation(path: str | Path, model, result) -> None:
     attributes `species`, `outcome`, `params` (JSON) and the run's JSON summary; atomically (temp + rename)."""
     import h5py
 
+    from solvers.records import probe_nodes
+
     path = Path(path)
     tmp = path.with_name(path.name + ".partial")
     try:
@@ -27,8 +29,9 @@ def save_simulation(path: str | Path, model, result) -> None:
             f.create_dataset("state", data=np.asarray(result.run.snap_u, dtype=float), compression="gzip")
             f.create_dataset("final", data=np.asarray(result.run.u, dtype=float))
             hist = f.create_group("history")
-            for name in ("t", "mean", "lo", "hi", "rate"):
+            for name in ("t", "mean", "lo", "hi", "rate", "probe"):
                 hist.create_dataset(name, data=getattr(result.run.history, name))
+            hist.create_dataset("probe_nodes", data=probe_nodes(np.asarray(result.coords, dtype=float)))
             f.attrs["species"] = np.array(model.species, dtype=h5py.string_dtype())
             f.attrs["outcome"] = result.outcome.outcome
             f.attrs["params"] = json.dumps(result.params)

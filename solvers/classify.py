@@ -63,8 +63,9 @@ class Tolerances:
         noise) agree to this relative spread ``(max - min) / max`` (a decaying or growing oscillation is not
         periodic), and
     samples_per_period : the window holds at least this many history rows per cycle, so that no verdict
-        rests on a few sampling intervals. A run oscillates when every varying signal oscillates; its period
-        is the longest of theirs (a standing wave whose mean stays put shows half its period in the ranges).
+        rests on a few sampling intervals. A run oscillates when every varying signal (means, ranges and the
+        values at the history's probe nodes) oscillates; its period is the longest of theirs (a standing wave
+        keeps its mean and its range repeats twice per period; the value at a probe node shows the period).
     steady_rel : a history signal is *steady* (for the moving-pattern test) when its peak-to-peak over the
         window is at most ``steady_rel * s_i + oscillation_abs``.
     moving_rate, min_travel : a run whose means and ranges are steady and whose state stays non-uniform is a
@@ -355,13 +356,13 @@ def _settled_history(history: History, tol: Tolerances) -> bool:
 
 def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, tol: Tolerances) -> Outcome:
     """Verdict on a run that did not settle, from its recent history."""
-    t, mean, lo, hi, rate = _window(history, tol.window)
+    t, mean, lo, hi, rate, probe = _window(history, tol.window)
     if t.size < tol.min_samples:
         return Outcome("unsettled", f"Not settled, and only {t.size} history rows in the window; no verdict.")
     if mean.shape[1] != u.shape[0]:
         msg = f"`history.mean` must have {u.shape[0]} columns (one per species), got {mean.shape[1]}."
         raise ValueError(msg)
-    if not all(np.all(np.isfinite(a)) for a in (mean, lo, hi, rate)):
+    if not all(np.all(np.isfinite(a)) for a in (mean, lo, hi, rate, probe)):
         return Outcome("diverged", "The history has non-finite values.")
     spread = hi - lo
     scale = np.maximum(np.max(np.abs(lo), axis=0), np.max(np.abs(hi), axis=0))
@@ -370,7 +371,9 @@ def _classify_dynamics(disc: Discretisation, u: np.ndarray, history: History, to
     periods, notes = [], []
     for i in range(mean.shape[1]):
         threshold = tol.oscillation_rel * scale[i] + tol.oscillation_abs
-        for what, x in (("mean", mean[:, i]), ("range", spread[:, i])):
+        signals = [("mean", mean[:, i]), ("range", spread[:, i])]
+        signals += [(f"value at probe node {j}", probe[:, i, j]) for j in range(probe.shape[2])]
+        for what, x in signals:
             if np.ptp(x) <= threshold or (what == "range" and x.max() <= uniform_band[i]):
                 continue
             period, note = _periodicity(t, x, tol)
@@ -431,12 +434,16 @@ def _still_changing(
 def _window(history: History, fraction: float) -> tuple[np.ndarray, ...]:
     """Rows of the last ``fraction`` of the recorded time span, repeated times dropped.
 
-    Returns times ``(k,)``, means, minima and maxima ``(k, n)`` and rates ``(k,)``.
+    Returns times ``(k,)``, means, minima and maxima ``(k, n)``, rates ``(k,)`` and probe values ``(k, n, p)``
+    (``p = 0`` for a history without probes).
     """
     t = np.asarray(history.t, dtype=float)
     rows = np.flatnonzero(t >= t[-1] - fraction * (t[-1] - t[0])) if t.size else np.zeros(0, dtype=int)
     rows = rows[np.concatenate([[True], np.diff(t[rows]) > 0])] if rows.size else rows
-    fields = (history.t, history.mean, history.lo, history.hi, history.rate)
+    probe = history.probe
+    if probe is None:
+        probe = np.zeros((t.size, np.shape(history.mean)[-1], 0))
+    fields = (history.t, history.mean, history.lo, history.hi, history.rate, probe)
     return tuple(np.asarray(a, dtype=float)[rows] for a in fields)
 
 

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["History"]
+__all__ = ["Discretisation", "History", "probe_nodes"]
 
 
 @dataclass(frozen=True)
@@ -19,6 +19,8 @@ class History:
     mean : ``(k, n)`` weighted spatial mean of each species.
     lo, hi : ``(k, n)`` spatial minimum and maximum of each species.
     rate : ``(k,)`` relative norm of the time derivative, ``||du/dt|| / max(||u||, floor)``.
+    probe : ``(k, n, p)`` values at ``p`` fixed nodes (`probe_nodes`), or None. A standing wave keeps its mean,
+        and its range repeats twice per period; a value at a node repeats once, so periods come from these.
     """
 
     t: np.ndarray
@@ -26,6 +28,15 @@ class History:
     lo: np.ndarray
     hi: np.ndarray
     rate: np.ndarray
+    probe: np.ndarray | None = None
+
+
+def probe_nodes(coords: np.ndarray) -> np.ndarray:
+    """Three fixed nodes for `History.probe`: nearest the low and high corners of the bounding box, and an
+    off-centre point at 0.37 of its diagonal (off the symmetry lines, where low modes have their nodal lines)."""
+    lo, hi = coords.min(axis=0), coords.max(axis=0)
+    points = (lo, hi, lo + 0.37 * (hi - lo))
+    return np.array([int(np.argmin(((coords - x) ** 2).sum(axis=1))) for x in points])
 
 
 @dataclass(frozen=True)

@@ -70,7 +70,7 @@ from scipy.linalg.blas import dtbsv as _tbsv
 from scipy.linalg.lapack import dgbtrf as _gbtrf
 from scipy.linalg.lapack import dgbtrs as _gbtrs
 
-from .records import Discretisation, History
+from .records import Discretisation, History, probe_nodes
 from .settle import SettleRule, relative_rate
 from .system import MolSystem
 
@@ -1025,9 +1025,10 @@ def _snapshot_times(snapshots: int | Sequence[float], t_end: float) -> np.ndarra
 class _Recorder:
     """History rows, kept as lists until the run ends."""
 
-    def __init__(self, weights: np.ndarray) -> None:
+    def __init__(self, weights: np.ndarray, probe: np.ndarray) -> None:
         self.w = weights / weights.sum()
-        self.t, self.mean, self.lo, self.hi, self.rate = [], [], [], [], []
+        self.nodes = probe
+        self.t, self.mean, self.lo, self.hi, self.rate, self.probe = [], [], [], [], [], []
 
     def add(self, t: float, u: np.ndarray, rate: float) -> float:
         """Record one row; return ``max |u|`` (non-finite if ``u`` is), which the driver checks for divergence."""
@@ -1037,16 +1038,17 @@ class _Recorder:
         self.lo.append(lo)
         self.hi.append(hi)
         self.rate.append(rate)
+        self.probe.append(u[:, self.nodes])
         return float(np.maximum(hi.max(), -lo.min()))  # np.maximum, not max(): NaN must propagate
 
     def drop_last(self) -> None:
         """Forget the last row (a diverged state is not part of the history)."""
-        for rows in (self.t, self.mean, self.lo, self.hi, self.rate):
+        for rows in (self.t, self.mean, self.lo, self.hi, self.rate, self.probe):
             rows.pop()
 
     def history(self) -> History:
         return History(np.array(self.t), np.array(self.mean), np.array(self.lo), np.array(self.hi),
-                       np.array(self.rate))
+                       np.array(self.rate), np.array(self.probe).reshape(len(self.t), -1, self.nodes.size))
 
 
 def integrate(
@@ -1105,7 +1107,7 @@ def integrate(
         raise ValueError(msg)
     bound = 1e6 * max(1.0, float(np.max(np.abs(u0)))) if bounds is None else float(bounds)
     times = _snapshot_times(snapshots, t_end)
-    rec = _Recorder(disc.weights)
+    rec = _Recorder(disc.weights, probe_nodes(disc.coords))
     snap_t, snap_u = [], []
     info = {"t_start": 0.0, "t_end": t_end, "method": method, "shape": system.shape}
     for obs in observers:

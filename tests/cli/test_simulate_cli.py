@@ -35,6 +35,9 @@ def test_simulate_json_and_save_layout(capsys, tmp_path):
         assert [s.decode() if isinstance(s, bytes) else s for s in f.attrs["species"]] == ["a", "c"]
         assert f.attrs["outcome"] == "stationary-pattern"
         assert json.loads(f.attrs["params"])["s"] == 0.35
+        probe, nodes = f["history/probe"][...], f["history/probe_nodes"][...]
+        assert probe.shape == (f["history/t"].size, 2, 3)
+        np.testing.assert_array_equal(probe[-1], f["final"][...][:, nodes])
     assert not (tmp_path / "run.h5.partial").exists()
 
 

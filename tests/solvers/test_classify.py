@@ -11,7 +11,7 @@ import scipy.sparse as sp
 from solvers.classify import OUTCOMES, Outcome, Tolerances, classify, pattern_features
 from solvers.fem import disk_p1, interval_p1
 from solvers.grids import interval_fv, rectangle_fv
-from solvers.records import Discretisation, History
+from solvers.records import Discretisation, History, probe_nodes
 
 L = 10.0
 BASE = np.array([1.0, 2.0])
@@ -324,6 +324,39 @@ def test_oscillating_pattern_is_dynamic():
     assert out.outcome == "dynamic-pattern", out.reason
     assert out.period == pytest.approx(4.0, rel=0.01)
     assert out.features is not None and out.features.regions == 1
+
+
+def _standing_wave(disc: Discretisation, t: np.ndarray, period: float, probe: bool) -> History:
+    """History of ``1 + 0.5 cos(pi x / L) cos(2 pi t / period)``, with or without values at the probe nodes."""
+    x = disc.coords[:, 0]
+    us = 1.0 + 0.5 * np.cos(np.pi * x / L)[None, :] * np.cos(2 * np.pi * t / period)[:, None]
+    dus = -0.5 * np.cos(np.pi * x / L)[None, :] * (2 * np.pi / period) * np.sin(2 * np.pi * t / period)[:, None]
+    w = disc.weights
+    rate = np.sqrt(dus**2 @ w) / np.sqrt(us**2 @ w)
+    nodes = probe_nodes(disc.coords)
+    return History(t, (us @ w / w.sum())[:, None], us.min(axis=1)[:, None], us.max(axis=1)[:, None], rate,
+                   us[:, None, nodes] if probe else None)
+
+
+def test_standing_wave_shows_its_whole_period():
+    """Regression (issue 3 note): a standing wave keeps its mean and its range repeats twice per period; the
+    values at the probe nodes give the whole period, without them only half shows (exact solution)."""
+    disc = interval_fv(L, 60)
+    t = np.linspace(0, 40, 1000)
+    u = 1.0 + 0.5 * np.cos(np.pi * disc.coords[:, 0] / L)[None, :]
+    with_probe = classify(disc, u, _standing_wave(disc, t, 5.0, True), BASE[:1], "reached-end")
+    assert with_probe.outcome == "dynamic-pattern", with_probe.reason
+    assert with_probe.period == pytest.approx(5.0, rel=0.01)
+    without = classify(disc, u, _standing_wave(disc, t, 5.0, False), BASE[:1], "reached-end")
+    assert without.period == pytest.approx(2.5, rel=0.01)
+
+
+def test_probe_nodes_are_spread():
+    """Probe nodes: both ends of an interval and one off-centre interior node; three distinct nodes on a disk."""
+    disc = interval_fv(L, 40)
+    nodes = probe_nodes(disc.coords)
+    assert nodes[0] == 0 and nodes[1] == disc.m - 1 and 0 < nodes[2] < disc.m - 1
+    assert len(set(probe_nodes(disk_p1(1.0, refine=2).coords))) == 3
 
 
 @pytest.mark.parametrize("periods", [1.2, 3.0])

@@ -8,6 +8,7 @@ from scipy.integrate import solve_ivp
 
 from solvers.fem import interval_p1
 from solvers.grids import interval_fv, rectangle_fv
+from solvers.records import probe_nodes
 from solvers.settle import SettleRule, polish, relative_rate
 from solvers.stepping import BACKENDS, TABLEAUS, RosenbrockW, StopRun, integrate
 from solvers.system import MolSystem
@@ -188,6 +189,15 @@ def test_banded_solve_with_and_without_row_swaps(coupling, rng):
     r = rng.standard_normal(system.shape)
     w = np.eye(r.size) - 0.5 * system.mass_jacobian(u).toarray()
     np.testing.assert_allclose(backend.solve(r).ravel(), np.linalg.solve(w, r.ravel()), rtol=1e-11, atol=1e-12)
+
+
+def test_history_records_the_probe_nodes():
+    """Each history row holds every species at the three probe nodes; the last row is the final state there."""
+    disc = interval_fv(10.0, 80)
+    res = integrate(disc, D_POL, fun_polarity, jac_polarity, pulse_start(disc), 5.0)
+    probe = res.history.probe
+    assert probe.shape == (res.history.t.size, 2, 3)
+    np.testing.assert_array_equal(probe[-1], res.u[:, probe_nodes(disc.coords)])
 
 
 def test_banded_refuses_a_plane_mesh():
