@@ -1,6 +1,6 @@
 """Time our stepper against scipy's solve_ivp(BDF) on a mass-conserved polarity problem, side by side.
 
-Run ``python benchmarks/bench_solvers.py`` (about 10 minutes) or ``--quick`` (about a minute). For every
+Run ``python benchmarks/bench_solvers.py`` (about 6 minutes) or ``--quick`` (about 20 s). For every
 case and method it climbs a ladder of tolerances (loosest first) until the final state is within
 ``--target`` (relative L2) of a fine reference (ours at rtol 1e-7), and prints for that run: wall time,
 accepted steps, peak memory (tracemalloc of Python/numpy allocations, in a second run; SuperLU's own
