@@ -156,10 +156,11 @@ class SparseLU:
         order = dissection_order(system.disc.coords, sp.csr_matrix(system.disc.stiffness))
         self._perm = (order[:, None] + m * np.arange(n)[None, :]).ravel()
         if system.lumped:
-            # step: where each entry of the fixed Jacobian pattern lands in the permuted matrix
-            pattern = system.mass_jacobian(np.ones(system.shape))
-            probe = sp.csr_matrix((np.arange(1, pattern.nnz + 1, dtype=float), pattern.indices, pattern.indptr),
-                                  shape=pattern.shape)[self._perm][:, self._perm]
+            # step: where each entry of the fixed Jacobian pattern (`MolSystem.pattern`) lands when permuted
+            indptr, indices = system.pattern
+            size = n * m
+            probe = sp.csr_matrix((np.arange(1, indices.size + 1, dtype=float), indices, indptr),
+                                  shape=(size, size))[self._perm][:, self._perm]
             probe.sort_indices()
             self._map = probe.data.astype(np.int64) - 1
             self._indices, self._indptr = probe.indices, probe.indptr
@@ -171,17 +172,17 @@ class SparseLU:
         """Factorise ``W`` for ``gamma h = gh`` with the Jacobian at ``u`` (None: keep the last one)."""
         sysm = self.system
         if u is not None or self._jac is None:
-            self._jac = sysm.mass_jacobian(u)
+            self._jac = sysm.jacobian_data(u) if sysm.lumped else sysm.mass_jacobian(u)
             self.njev += 1
-        jac = self._jac
         if sysm.lumped:
-            data = -gh * jac.data[self._map]
+            data = -gh * self._jac[self._map]
             data[self._diag] += 1.0
             # CSR data of W read as CSC is W^T: factorise that and solve with trans="T".
-            wt = sp.csc_matrix((data, self._indices, self._indptr), shape=jac.shape)
+            size = sysm.n * sysm.m
+            wt = sp.csc_matrix((data, self._indices, self._indptr), shape=(size, size))
             trans = "T"
         else:
-            wt = (self._mass - gh * jac).tocsr()[self._perm][:, self._perm].tocsc()
+            wt = (self._mass - gh * self._jac).tocsr()[self._perm][:, self._perm].tocsc()
             trans = "N"
         try:
             self._lu = spla.splu(wt, permc_spec="NATURAL", diag_pivot_thresh=0.1)

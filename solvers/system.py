@@ -208,9 +208,7 @@ class MolSystem:
         For callers that place the entries themselves (the banded LU) without building a sparse matrix.
         """
         self._require_lumped("jacobian_data")
-        data = self._base.copy()
-        data[self._reaction_pos] += np.asarray(self.jacobian(u), dtype=float).ravel()
-        return data
+        return self._pattern_data(self.jacobian(u))
 
     @property
     def pattern(self) -> tuple[np.ndarray, np.ndarray]:
@@ -289,9 +287,14 @@ class MolSystem:
         self._reaction_pos = pos[d_keys.size :]
         self.diagonal_pos = self._reaction_pos.reshape(n, n, m)[np.arange(n), np.arange(n)].ravel()
 
-    def _jac_from_blocks(self, jr: np.ndarray) -> sp.csr_matrix:
-        """Fill the fixed pattern with diffusion plus the reaction blocks ``jr (n, n, m)``."""
+    def _pattern_data(self, jr: np.ndarray) -> np.ndarray:
+        """Diffusion plus the reaction blocks ``jr (n, n, m)``, as entries of the fixed pattern."""
         data = self._base.copy()
         data[self._reaction_pos] += np.asarray(jr, dtype=float).ravel()
+        return data
+
+    def _jac_from_blocks(self, jr: np.ndarray) -> sp.csr_matrix:
+        """The fixed pattern filled by `_pattern_data`, as a CSR matrix."""
         size = self.n * self.m
-        return sp.csr_matrix((data, self._pattern_indices, self._pattern_indptr), shape=(size, size))
+        return sp.csr_matrix((self._pattern_data(jr), self._pattern_indices, self._pattern_indptr),
+                             shape=(size, size))
