@@ -32,7 +32,7 @@ Four linear-solve backends (registry `BACKENDS`; ``"split"``, for P1 meshes in 2
   step stays within a dead band of the step it was made for and the Jacobian is younger than
   ``jac_every`` steps; refactorised at once after a rejection.
 - ``"banded"``: the same exact ``W`` on 1D meshes in LAPACK band storage (``dgbtrf``/``dgbtrs``), about
-  ten times cheaper to factorise than SuperLU there (measured). Default in 1D.
+  six times cheaper to factorise than SuperLU there (``benchmarks/bench_kernels.py``). Default in 1D.
 - ``"dct"``: uniform finite-volume grids (lumped mass). Approximate factorisation
   ``W ~ (I + gamma h D Lambda)(I - gamma h S J_r)``: the diffusion factor is diagonal after a type-2 cosine
   transform (it diagonalises the Neumann finite-volume Laplacian exactly), the reaction factor is a small
@@ -219,7 +219,7 @@ class BandedLU:
 
     Nodes go in coordinate order with the species of a node together, so ``W`` has ``n`` sub- and
     super-diagonals for a lumped mass (``2n - 1`` for a consistent one). On 1000 cells with 2 species a
-    factorisation took 62 us against 850 us for SuperLU (measured).
+    factorisation, band fill included, took 87 us against 550 us for SuperLU (``benchmarks/bench_kernels.py``).
     """
 
     cheap_rescale = False
@@ -278,8 +278,8 @@ class BandedLU:
         self._lu, self._piv = lu, piv
         self._triangles = None
         if np.array_equal(piv, np.arange(piv.size)) and np.shares_memory(lu, band):
-            # step: no row was swapped, so W = L U with banded L and U: two dtbsv calls solve it in half the
-            # time of dgbtrs, which calls BLAS once per column to apply its interchanges (measured). U is
+            # step: no row was swapped, so W = L U with banded L and U: two dtbsv calls solve it in 60 % of the
+            # time of dgbtrs, which calls BLAS once per column to apply its interchanges (bench_kernels.py). U is
             # rows 0 .. 2 half of the factor; L's multipliers, rows 2 half + 1 .., are read through a view
             # shifted by 2 half entries, whose row 0 (U's diagonal) dtbsv ignores for a unit L
             self._triangles = band[2 * half :].reshape(-1, self._rows).T, lu
@@ -304,7 +304,8 @@ class NodeBlocks:
     ``S`` scales each node's block so that ``gamma h ||S J_r||_inf <= theta`` (see `CosineFactored`). A row
     ``w`` with ``w^T J_r = 0`` gives ``w^T (I - gamma h S J_r) = w^T``: the factor keeps conserved totals.
     Made once per Jacobian; `rescale` re-inverts for a new ``gamma h`` (for 2 species in closed form, on
-    contiguous component arrays: 30 us against 180 us for the batched general route on 4096 nodes, measured).
+    contiguous component arrays: 47 us against 635 us for a batched ``np.linalg.inv`` on 4096 nodes,
+    ``benchmarks/bench_kernels.py``).
     """
 
     def __init__(self, jr: np.ndarray, theta: float) -> None:

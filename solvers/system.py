@@ -39,7 +39,7 @@ def _edge_form(stiffness: sp.csr_matrix) -> tuple[sp.csr_matrix, sp.csr_matrix, 
 
     Each edge ``(j, k)``, ``j < k``, with ``K_jk != 0`` is a row of ``G`` (``+1`` at ``j``, ``-1`` at
     ``k``) with conductance ``c = -K_jk``. ``G u`` is then one exact-sign subtraction per edge. ``G^T`` is
-    kept in CSR too: a CSR product per species took half the time of the multi-vector CSC one (measured).
+    kept in CSR too, for one CSR product per species.
     """
     rows = np.repeat(np.arange(stiffness.shape[0]), np.diff(stiffness.indptr))
     upper = (stiffness.indices > rows) & (stiffness.data != 0.0)
@@ -165,7 +165,8 @@ class MolSystem:
         sums of fluxes. The nodal product ``K @ u`` instead rounds ``K_jj u_j`` on the scale of ``u`` and
         on P1 meshes (non-uniform ``K``, ``weights``) leaves a systematic total rate that does not vanish at
         a steady state (measured: 4e-10 relative drift of a conserved total over t = 500 in 1D). Uniform
-        grids take the same fluxes by array slices (3-5 times faster than the sparse products: measured).
+        grids take the same fluxes by array slices (1.6-2.5 times faster than the sparse edge products:
+        ``benchmarks/bench_kernels.py``).
         """
         if self._grid is not None:
             return _grid_product(u, self._grid_shape, self._grid)
