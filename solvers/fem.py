@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 import operator
 from collections.abc import Callable, Sequence
+from dataclasses import replace
 
 import numpy as np
 import scipy.sparse as sp
@@ -99,26 +100,41 @@ def disk_level(nodes: int) -> int:
     return int(levels[np.argmin(np.abs(np.log(counts / nodes)))])
 
 
-def _disk_mesh(level: int) -> MeshTri:
-    """Unit-disk mesh: a regular hexagon fanned into 6 triangles, refined ``level`` times.
+def _disk_mesh(level: int) -> tuple[MeshTri, tuple[sp.csr_matrix, ...]]:
+    """Unit-disk mesh: a regular hexagon fanned into 6 triangles, refined ``level`` times; and the interpolations.
 
     After each uniform refinement the new boundary nodes are projected radially onto the unit circle (the
     construction of ``MeshTri.init_circle``, which starts from a square and so jumps from 8321 to 33025 nodes;
     the hexagon gives 3169, 12481, 49537 and equilateral starting triangles). A radius spans ``2^level``
     element edges. No smoothing: it would lower the smallest angle (about 44 degrees here at every level up
     to 6, largest below 90, so ``K`` has no positive off-diagonal entries).
+
+    The interpolation from each mesh to the next keeps the old nodes and puts every new node (``refined``
+    appends one per edge, in edge order) at the mean of its edge's end nodes, the new boundary nodes too: a
+    transfer for multigrid, not an exact embedding, since those nodes then move onto the circle.
     """
     angles = np.arange(6) * np.pi / 3.0
     p = np.column_stack([[0.0, 0.0], np.vstack([np.cos(angles), np.sin(angles)])])
     t = np.vstack([np.zeros(6, dtype=np.int64), np.arange(1, 7), np.roll(np.arange(1, 7), -1)])
     mesh = MeshTri(p, t)
+    prolongations = []
     for _ in range(level):
+        prolongations.append(_midpoint_interpolation(mesh.p.shape[1], mesh.facets))
         mesh = mesh.refined()
         boundary = mesh.boundary_nodes()
         p = mesh.p.copy()
         p[:, boundary] /= np.linalg.norm(p[:, boundary], axis=0)
         mesh = MeshTri(p, mesh.t)
-    return mesh
+    return mesh, tuple(prolongations)
+
+
+def _midpoint_interpolation(nodes: int, edges: np.ndarray) -> sp.csr_matrix:
+    """``(nodes + edges, nodes)``: identity on the old nodes, then one row of two halves per edge ``(2, e)``."""
+    count = edges.shape[1]
+    rows = np.concatenate([np.arange(nodes), np.tile(nodes + np.arange(count), 2)])
+    cols = np.concatenate([np.arange(nodes), edges[0], edges[1]])
+    vals = np.concatenate([np.ones(nodes), np.full(2 * count, 0.5)])
+    return sp.csr_matrix((vals, (rows, cols)), shape=(nodes + count, nodes))
 
 
 def disk_p1(
@@ -142,9 +158,9 @@ def disk_p1(
     if not 0 <= refine <= 10:
         msg = f"`refine` must be an integer in 0 .. 10, got {refine!r}."
         raise ValueError(msg)
-    mesh = _disk_mesh(refine)
+    mesh, prolongations = _disk_mesh(refine)
     mesh = MeshTri(mesh.p * radius, mesh.t)
-    return _from_mesh(mesh, ElementTriP1(), "disk", (radius,), lumped)
+    return replace(_from_mesh(mesh, ElementTriP1(), "disk", (radius,), lumped), prolongations=prolongations)
 
 
 # ---- registry -------------------------------------------------------------------------------------------

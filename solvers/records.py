@@ -57,6 +57,9 @@ class Discretisation:
     method : ``"fv"`` (cell-centred finite volumes) or ``"p1"`` (scikit-fem P1 elements).
     grid : cell counts ``(nx,)`` or ``(nx, ny)`` for uniform finite-volume grids (fast cosine-transform
         solves apply), None otherwise. Cell ``(i, j)`` is node ``i * ny + j`` (C order).
+    prolongations : for a mesh made by uniform refinement, the sparse interpolations from each coarser mesh
+        to the next finer, coarsest first, the last onto these nodes (geometric multigrid uses them, see
+        `solvers.multigrid`); empty otherwise.
     """
 
     coords: np.ndarray
@@ -68,6 +71,7 @@ class Discretisation:
     size: tuple[float, ...]
     method: str
     grid: tuple[int, ...] | None = None
+    prolongations: tuple = ()
 
     @property
     def m(self) -> int:
