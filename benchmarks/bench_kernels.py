@@ -5,7 +5,11 @@ Run ``python benchmarks/bench_kernels.py`` (a few seconds). Each row is the best
 - the banded LU of ``W`` (1D, 1000 cells, 2 species) against SuperLU on the same matrix: factorisation,
   and the solve by two ``dtbsv`` calls (no row swaps) against ``dgbtrs`` and against SuperLU's solve;
 - the closed-form 2 x 2 node blocks against the batched general inverse (``np.linalg.inv``), 64 x 64 grid;
-- ``K u`` by grid slices against the sparse edge-flux product (1D 1000 cells, 2D 64 x 64).
+- ``K u`` by grid slices against the sparse edge-flux product (1D 1000 cells, 2D 64 x 64);
+- one species solve of ``M + g K`` on the 12481-node P1 disk: a multigrid V-cycle against SuperLU's solve
+  (nested-dissection order, as the ``"split"`` backend used it), and a new ``g`` for multigrid against a
+  SuperLU factorisation (fewer repeats: 5 x 5). The V-cycle is not exact: its energy error is about 4 % from
+  zero (`tests/solvers/test_multigrid.py`); inside GMRES on ``W`` that is enough.
 """
 
 from __future__ import annotations
@@ -26,14 +30,16 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from bench_solvers import DIFFUSION, jacobian, pulse, reaction  # noqa: E402
 
+from solvers.fem import disk_p1  # noqa: E402
 from solvers.grids import interval_fv, rectangle_fv  # noqa: E402
-from solvers.stepping import BACKENDS, NodeBlocks  # noqa: E402
+from solvers.multigrid import Multigrid  # noqa: E402
+from solvers.stepping import BACKENDS, NodeBlocks, dissection_order  # noqa: E402
 from solvers.system import MolSystem  # noqa: E402
 
 
-def best_us(fun) -> float:
-    """Microseconds per call, best of 5 x 50."""
-    return min(timeit.repeat(fun, number=50, repeat=5)) / 50 * 1e6
+def best_us(fun, number: int = 50) -> float:
+    """Microseconds per call, best of 5 x ``number``."""
+    return min(timeit.repeat(fun, number=number, repeat=5)) / number * 1e6
 
 
 def row(label: str, ours: float, other: float, other_label: str) -> None:
@@ -97,7 +103,32 @@ def products() -> None:
         row("K u by grid slices", sliced, edge, "sparse edge fluxes")
 
 
+def species_solve(g: float = 0.5) -> None:
+    """One V-cycle against a SuperLU solve of ``M + g K`` on the disk, and a new ``g`` against a factorisation."""
+    disc = disk_p1(5.0, refine=6)
+    mass, stiffness = sp.diags(disc.weights).tocsr(), sp.csr_matrix(disc.stiffness)
+    grid = Multigrid(mass, stiffness, disc.prolongations)
+    grid.update(g)
+    order = dissection_order(disc.coords, stiffness)
+    a = sp.csr_matrix(mass + g * stiffness)
+    a_nd = a[order][:, order].tocsc()
+
+    def factorise():
+        return spla.splu(a_nd, permc_spec="NATURAL", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
+
+    lu = factorise()
+    b = mass @ pulse(disc)[0]
+    x = grid.solve(b)
+    exact = np.empty_like(b)
+    exact[order] = lu.solve(b[order])
+    error = np.sqrt((x - exact) @ (a @ (x - exact)) / (exact @ (a @ exact)))
+    print(f"P1 disk, {disc.m} nodes, one species (V-cycle energy error {error:.1e} on a pulse):")
+    row("multigrid V-cycle", best_us(lambda: grid.solve(b)), best_us(lambda: lu.solve(b[order])), "SuperLU solve")
+    row("multigrid, new g", best_us(lambda: grid.update(g), 5), best_us(factorise, 5), "SuperLU factorisation")
+
+
 if __name__ == "__main__":
     banded()
     node_blocks()
     products()
+    species_solve()

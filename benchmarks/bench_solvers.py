@@ -8,7 +8,7 @@ buffers are not seen by it, so the process's peak RSS is printed at the end too)
 speed-up of ours. It also prints the lower bound of the issue: the accepted steps a second-order method
 needs at that accuracy (ours with the 2-stage ROS2 tableau, climbing the same ladder) x (one diffusion
 solve + one reaction evaluation), with the cheapest exact diffusion solve there is for the mesh (see
-`diffusion_solver`): what an ideal semi-implicit second-order scheme would pay, with no overhead at all.
+`diffusion_solvers`): what an ideal semi-implicit second-order scheme would pay, with no overhead at all.
 
 The methods:
 
@@ -17,6 +17,8 @@ The methods:
 - ``bdf+jac``: ``solve_ivp(method="BDF")`` on our `MolSystem` with its analytic sparse Jacobian.
 - ``rdcheck``: `solvers.stepping.integrate` (ROS34PW2; cosine transforms on 2D grids, per-species
   factorisations with GMRES on P1 disks, banded LU in 1D; see `choose_backend`).
+- ``rdcheck/superlu`` (disk only): ours with the species solves of the ``"split"`` backend by SuperLU
+  factorisations instead of the default multigrid V-cycle, to show what multigrid buys.
 - ``ros2`` (for the bound only): the same stepper with the 2-stage, second-order ROS2 tableau.
 
 Short runs are timed as the best of up to 5 repeats (while they take under 0.5 s in all), every method alike.
@@ -154,7 +156,8 @@ def run_method(method: str, disc, u0: np.ndarray, t_end: float, rtol: float):
                         jac=system.jac)
         return sol.y[:, -1].reshape(u0.shape), len(sol.t) - 1
     scheme = "ros2" if method == "ros2" else "ros34pw2"
-    res = integrate(disc, DIFFUSION, reaction, jacobian, u0, t_end, rtol=rtol, atol=1e-9, scheme=scheme)
+    options = {"backend": "split", "backend_options": {"species": "superlu"}} if method == "rdcheck/superlu" else {}
+    res = integrate(disc, DIFFUSION, reaction, jacobian, u0, t_end, rtol=rtol, atol=1e-9, scheme=scheme, **options)
     return res.u, res.nsteps
 
 
@@ -287,7 +290,7 @@ def cases(quick: bool, sizes_1d, sizes_2d, disk_level: int | None):
         out.append((f"2D FV {n}x{n}", rectangle_fv(10.0, 10.0, n, n), ("fd+sparsity", "bdf+jac", "rdcheck")))
     if disk_level is not None:
         disc = disk_p1(5.0, refine=disk_level)
-        out.append((f"disk P1 {disc.m} nodes", disc, ("bdf+jac", "rdcheck")))
+        out.append((f"disk P1 {disc.m} nodes", disc, ("bdf+jac", "rdcheck/superlu", "rdcheck")))
     return out
 
 
@@ -307,7 +310,7 @@ def main(argv: list[str] | None = None) -> None:
         args.sizes_1d, args.sizes_2d, args.disk_level, args.big = [1000], [64], -1, 0
     disk = None if args.disk_level < 0 else args.disk_level
     print(f"scheme {sorted(TABLEAUS)}; t_end {args.t_end}; target error {args.target:g}; ladder {LADDER}")
-    header = (f"{'case':<22}{'method':<13}{'rtol':>7}{'seconds':>9}{'steps':>7}{'error':>10}{'peak MB':>9}"
+    header = (f"{'case':<22}{'method':<16}{'rtol':>7}{'seconds':>9}{'steps':>7}{'error':>10}{'peak MB':>9}"
               f"{'t / ours':>10}")
     for label, disc, methods in cases(args.quick, args.sizes_1d, args.sizes_2d, disk):
         u0 = pulse(disc)
@@ -323,7 +326,7 @@ def main(argv: list[str] | None = None) -> None:
         for run in runs.values():
             ratio = run.seconds / ours.seconds
             flag = "" if run.error <= args.target else "  (target not reached)"
-            print(f"{'':<22}{run.method:<13}{run.rtol:>7.0e}{run.seconds:>9.3f}{run.steps:>7d}{run.error:>10.2e}"
+            print(f"{'':<22}{run.method:<16}{run.rtol:>7.0e}{run.seconds:>9.3f}{run.steps:>7d}{run.error:>10.2e}"
                   f"{run.peak_mb:>9.1f}{ratio:>9.1f}x{flag}")
         bound = lower_bound(disc, u0, second.steps)
         print(f"{'':<22}second order (ours with ROS2): {second.steps} steps at rtol {second.rtol:.0e}, "

@@ -26,7 +26,8 @@ tolerances. ROS34PW2 is the default; ROS2 stays for comparison and tests. Not im
 W-method), variable-step BDF2 (Newton iterations per step), IMEX SBDF2 (explicit reactions: a large step
 near a steady state can destabilise it).
 
-Four linear-solve backends (registry `BACKENDS`; ``"split"``, for P1 meshes in 2D, is `SpeciesFactored`):
+Four linear-solve backends (registry `BACKENDS`; ``"split"``, for P1 meshes in 2D, is `SpeciesFactored`:
+GMRES on the exact ``W``, preconditioned by per-species diffusion solves, multigrid V-cycles on refined disks):
 
 - ``"lu"``: the sparse ``W`` with the Jacobian at the current state, factorised by SuperLU, kept while the
   step stays within a dead band of the step it was made for and the Jacobian is younger than
@@ -70,6 +71,7 @@ from scipy.linalg.blas import dtbsv as _tbsv
 from scipy.linalg.lapack import dgbtrf as _gbtrf
 from scipy.linalg.lapack import dgbtrs as _gbtrs
 
+from .multigrid import Multigrid
 from .records import Discretisation, History, probe_nodes
 from .settle import SettleRule, relative_rate
 from .system import MolSystem
@@ -410,31 +412,45 @@ class SpeciesFactored:
 
     The preconditioner is the approximate factorisation ``P = (B + gamma h D K)(I - gamma h S J_r)``. Its
     diffusion factor is block-diagonal over species, each block ``M + gamma h D_i K`` symmetric positive
-    definite (``M`` the lumped or consistent mass) and independent of the state, so it is factorised by
-    SuperLU (nested-dissection order) only when the step size leaves a ratio ``reuse`` of one already
-    factorised (the last ``cache`` are kept); a new Jacobian costs only the ``n x n`` node blocks
-    (`NodeBlocks`), so one is taken at every step. ``krylov`` GMRES steps on the exact sparse ``W`` (one
-    by default) then remove most of the splitting error ``gamma^2 h^2 D K S J_r``. ``P``, ``W`` and hence
-    every GMRES iterate keep conserved totals (``1^T K = 0``, ``w^T J_r = 0``). With ``krylov=0`` the
-    plain factorisation is ``W`` (a valid W-method, any ``W`` keeps the order) and the stepper's dead band
-    decides when to refactorise. Once the relative rate falls below ``rest`` the stepper hands over to
-    ``"lu"``: with large steps near rest one GMRES step leaves stiff modes barely damped and the rate
-    hovered at 1e-5 .. 1e-4 up to t = 5000 on the 3169-node disk (measured); GMRES solved to a residual of
-    1e-3 settled but cost more than the handover (12481 nodes, settle at 1e-6: 3.6 s with ``rest = 1e-3``,
-    6.0 s with 3e-3, 6.1 s with ``"lu"`` throughout; settle times differ, 1750 .. 3500, so this is rough).
+    definite (``M`` the lumped or consistent mass) and independent of the state. ``species`` says how these
+    blocks are solved:
 
-    Measured on the 12481-node P1 disk (benchmark problem, t = 200, rtol 1e-2, one BLAS thread): 13 steps,
-    5 factorisations, 0.85 s at final-state error 5.5e-4 (1.0-1.3 s on another day, same code); the coupled
-    ``"lu"`` 13 steps, 10 coupled factorisations (twice the cost each), 1.7 s at 3.7e-4; ``krylov=0`` needed
-    rtol 1e-3 and 32 steps.
+    - ``"multigrid"`` (default where the mesh carries its refinement hierarchy, as the disk does): one
+      geometric V-cycle (`solvers.multigrid.Multigrid`), remade for every step size at the cost of a few
+      vector operations, so no factorisation at all.
+    - ``"superlu"`` (default elsewhere): SuperLU in nested-dissection order, factorised only when the step
+      size leaves a ratio ``reuse`` of one already factorised (the last ``cache`` are kept).
+
+    A new Jacobian costs only the ``n x n`` node blocks (`NodeBlocks`), so one is taken at every step.
+    ``krylov`` GMRES steps on the exact sparse ``W`` (one by default) then remove most of the splitting
+    error ``gamma^2 h^2 D K S J_r`` (and the V-cycle's error). ``P``, ``W`` and hence every GMRES iterate
+    keep conserved totals (``1^T K = 0``, ``w^T J_r = 0``; the V-cycle is shifted to keep them too). With
+    ``krylov=0`` the plain factorisation is ``W`` (a valid W-method, any ``W`` keeps the order) and the
+    stepper's dead band decides when to refactorise. Once the relative rate falls below ``rest`` the stepper
+    hands over to ``"lu"``: with large steps near rest one GMRES step leaves stiff modes barely damped and
+    the rate hovered at 1e-5 .. 1e-4 up to t = 5000 on the 3169-node disk (measured); GMRES solved to a
+    residual of 1e-3 settled but cost more than the handover (12481 nodes, settle at 1e-6: 3.6 s with
+    ``rest = 1e-3``, 6.0 s with 3e-3, 6.1 s with ``"lu"`` throughout; settle times differ, 1750 .. 3500, so
+    this is rough).
+
+    Measured on the 12481-node P1 disk (``benchmarks/bench_solvers.py``: t = 200, one BLAS thread, loosest
+    tolerance of its ladder with final-state error below 1e-3): multigrid 11 steps, 0.58 s at error 4.8e-4;
+    SuperLU 13 steps, 5 factorisations per species, 1.24 s at 5.8e-4; scipy's BDF with the analytic
+    Jacobian 5.5 s.
     """
 
     cheap_rescale = False
     exact = False
 
     def __init__(self, system: MolSystem, theta: float = np.inf, cache: int = 4, krylov: int = 1,
-                 reuse: float = 3.0, rest: float = 1e-3) -> None:
+                 reuse: float = 3.0, rest: float = 1e-3, species: str = "auto") -> None:
+        if species == "auto":
+            species = "multigrid" if system.disc.prolongations else "superlu"
+        if species not in ("multigrid", "superlu"):
+            msg = f"`species` must be 'multigrid', 'superlu' or 'auto', got {species!r}."
+            raise ValueError(msg)
         self.system = system
+        self.species = species
         self.njev = 0
         self.nlu = 0
         self.theta = float(theta)
@@ -447,18 +463,28 @@ class SpeciesFactored:
         self.cheap_rescale = self.cheap_jacobian = self.krylov > 0
         disc = system.disc
         stiffness = sp.csr_matrix(system.stiffness)
-        self._order = dissection_order(disc.coords, stiffness)
         mass = sp.diags(disc.weights) if system.lumped else sp.csr_matrix(disc.mass)
-        self._mass = sp.csr_matrix(mass)[self._order][:, self._order].tocsc()
-        self._stiffness = stiffness[self._order][:, self._order].tocsc()
+        if species == "multigrid":
+            self._order = None
+            self._grids = [None if d == 0.0 else Multigrid(mass, stiffness, disc.prolongations)
+                           for d in system.diffusion]
+        else:
+            self._order = dissection_order(disc.coords, stiffness)
+            self._mass = sp.csr_matrix(mass)[self._order][:, self._order].tocsc()
+            self._stiffness = stiffness[self._order][:, self._order].tocsc()
         self._factors: dict[float, list] = {}
         self._jr = None
 
     def _factor(self, gh: float) -> list:
-        """Per-species factorisations of ``M + gh D_i K`` (None where ``D_i = 0``), cached by ``gh``.
+        """Per-species solvers of ``M + gh D_i K`` (None where ``D_i = 0``), by `species`.
 
-        A cached factorisation for a ``gh`` within the ratio ``reuse`` of this one is returned instead.
+        SuperLU factors are cached by ``gh``; one for a ``gh`` within the ratio ``reuse`` is returned instead.
         """
+        if self.species == "multigrid":
+            for d, grid in zip(self.system.diffusion, self._grids, strict=True):
+                if grid is not None:
+                    grid.update(gh * d)
+            return self._grids
         if self._factors:
             near = min(self._factors, key=lambda g: abs(np.log(g / gh)))
             if abs(np.log(near / gh)) <= np.log(self.reuse):
@@ -511,8 +537,10 @@ class SpeciesFactored:
             rhs = r[i] * sysm.disc.weights if sysm.lumped else r[i]
             if lu is None:
                 z[i] = r[i] if sysm.lumped else sysm.solve_mass(r[i : i + 1])[0]
-                continue
-            z[i, order] = lu.solve(np.ascontiguousarray(rhs[order]))
+            elif order is None:
+                z[i] = lu.solve(rhs)
+            else:
+                z[i, order] = lu.solve(np.ascontiguousarray(rhs[order]))
         return self._blocks.solve(z)
 
 
@@ -605,7 +633,8 @@ def choose_backend(disc: Discretisation) -> str:
 
     In 1D the exact banded LU costs about as much per step as the transforms, and its exact ``W`` takes far
     larger steps near a steady state (measured; see the module docstring). On the 12481-node P1 disk
-    ``"split"`` took 0.85 s against 1.7 s for ``"lu"`` at equal error (measured, see `SpeciesFactored`).
+    ``"split"`` with SuperLU species solves took 0.85 s against 1.7 s for ``"lu"`` at equal error (measured),
+    and with multigrid species solves it takes half that again (see `SpeciesFactored`).
     """
     if disc.dim < 2:
         return "banded" if line_order(disc) is not None else "lu"
@@ -923,15 +952,28 @@ class RosenbrockW(OdeSolver):
         which move at the reaction's rates, and would hold the rate above a settle threshold for ever).
         Then the explicit remainder of the reaction, not accuracy, limits the step; with the exact ``W``
         the step can grow without bound.
+
+        For ``"dct"`` near rest means that the rate is below the backend's ``rest``; for ``"split"``, the rate or
+        the state's relative change over the last step divided by its length. The second is needed because a
+        stiff residue the split ``W`` cannot damp may hold the rate up while the state stands still: on a
+        817-node disk the rate stayed at 0.02 from t = 270 to 20000 over steps growing to 5e4, unsettled. On
+        ``"dct"`` the same rule handed over too early (64 x 64 benchmark: 0.17 s against 0.05 s), so it is not used.
         """
         if self.backend.exact:
             return
-        rate = relative_rate(self.system.disc.weights, self.u, self.dudt, self.atol)
+        weights = self.system.disc.weights
+        rate = relative_rate(weights, self.u, self.dudt, self.atol)
         # "split" and "dct" hand over near rest on the rate alone (their `rest`), the others after surprises:
         # on the surprise rule alone "dct" hovered at rest without settling (demo 48x48, 4232 steps unsettled;
         # with the rate rule 12 steps, settled, as with "lu")
-        near_rest = rate < self.backend.rest if self.backend.name in ("split", "dct") else (
-            sum(self._recent) >= 2 and rate < self.rest_rate)
+        if self.backend.name == "split":
+            t_old, u_old, _ = self._prev
+            moved = relative_rate(weights, u_old, (self.u - u_old) / (self.t - t_old), self.atol)
+            near_rest = min(rate, moved) < self.backend.rest
+        elif self.backend.name == "dct":
+            near_rest = rate < self.backend.rest
+        else:
+            near_rest = sum(self._recent) >= 2 and rate < self.rest_rate
         if not near_rest:
             return
         self._spent = (self.njev, self.nlu)

@@ -112,9 +112,12 @@ def test_grid_conductances_refuse_other_operators():
     assert grid_conductances(bent.tocsr(), disc.grid) is None
 
 
+@pytest.mark.parametrize("species", ["multigrid", "superlu"])
 @pytest.mark.parametrize("options", [{}, {"krylov": 0, "theta": 1.0}])
-def test_split_backend_matches_lu_on_disk(options):
-    """The per-species ("split") backend and the coupled sparse LU agree on a P1 disk at tight tolerance."""
+def test_split_backend_matches_lu_on_disk(options, species):
+    """The per-species ("split") backend, its species solved by multigrid or by SuperLU, and the coupled sparse
+    LU agree on a P1 disk at tight tolerance; totals kept to round-off."""
+    options = {**options, "species": species}
     disc = disk_p1(3.0, refine=3)
     u0 = edge_pulse(disc)
     runs = [integrate(disc, D_WP, fun_wave_pinning, jac_wave_pinning, u0, 50.0, rtol=1e-7, atol=1e-10,
