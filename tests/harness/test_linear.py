@@ -434,9 +434,14 @@ def _local_growth(jac: np.ndarray, n_slow: int) -> float:
 
 EPSILONS = st.sampled_from([1e-4, 1e-5, 1e-6])
 SEEDS = st.integers(0, 2**32 - 1)
+# About 75 % of the draws fail the assumptions, by design (a stable whole, a clear local sign). Hypothesis's
+# filter health check can then fail a run at random before the first examples count (the three-species test
+# failed in 2 of 4 full local runs and passed alone, the failure text not kept; this is the likely cause).
+# The 200 examples that count are unchanged.
+FILTERED = {"suppress_health_check": [HealthCheck.filter_too_much]}
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=200, deadline=None, **FILTERED)
 @given(seed=SEEDS, eps=EPSILONS)
 def test_spike_limit_two_species_line(seed, eps):
     """2 species: line Turing instability in the spike limit iff the local block J_ss is unstable (Holmes 2014)."""
@@ -451,7 +456,7 @@ def test_spike_limit_two_species_line(seed, eps):
     assert verdict.line_turing_unstable is (local > 0)
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=200, deadline=None, **FILTERED)
 @given(seed=SEEDS, n_slow=st.sampled_from([1, 2]), eps=EPSILONS)
 def test_spike_limit_three_species_domain(seed, n_slow, eps):
     """3 species, 1 or 2 slow: on a fixed domain, Turing instability in the spike limit iff J_ss is unstable.
