@@ -17,7 +17,7 @@ The methods:
 - ``bdf+jac``: ``solve_ivp(method="BDF")`` on our `MolSystem` with its analytic sparse Jacobian.
 - ``rdcheck``: `solvers.stepping.integrate` (ROS34PW2; cosine transforms on 2D grids, per-species
   factorisations with GMRES on P1 disks, banded LU in 1D; see `choose_backend`).
-- ``rdcheck/superlu`` (disk only): ours with the species solves of the ``"split"`` backend by SuperLU
+- ``rdcheck/superlu`` (P1 meshes only): ours with the species solves of the ``"split"`` backend by SuperLU
   factorisations instead of the default multigrid V-cycle, to show what multigrid buys.
 - ``ros2`` (for the bound only): the same stepper with the 2-stage, second-order ROS2 tableau.
 
@@ -53,7 +53,7 @@ from scipy.linalg.lapack import dpttrf, dpttrs  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from solvers.fem import disk_p1  # noqa: E402
+from solvers.fem import disk_p1, rectangle_p1  # noqa: E402
 from solvers.grids import interval_fv, rectangle_fv  # noqa: E402
 from solvers.stepping import (  # noqa: E402
     TABLEAUS,
@@ -281,13 +281,16 @@ def lower_bound(disc, u0, steps: int) -> Bound:
     return Bound(steps, fastest, times[fastest], best_of(lambda: reaction(u0)))
 
 
-def cases(quick: bool, sizes_1d, sizes_2d, disk_level: int | None):
+def cases(quick: bool, sizes_1d, sizes_2d, disk_level: int | None, rect_p1: int = 0):
     """(label, discretisation, methods) to run."""
     out = []
     for cells in sizes_1d:
         out.append((f"1D FV {cells}", interval_fv(10.0, cells), ("fd+sparsity", "bdf+jac", "rdcheck")))
     for n in sizes_2d:
         out.append((f"2D FV {n}x{n}", rectangle_fv(10.0, 10.0, n, n), ("fd+sparsity", "bdf+jac", "rdcheck")))
+    if rect_p1:
+        disc = rectangle_p1(10.0, 10.0, rect_p1, rect_p1)
+        out.append((f"2D P1 {rect_p1}x{rect_p1}", disc, ("bdf+jac", "rdcheck/superlu", "rdcheck")))
     if disk_level is not None:
         disc = disk_p1(5.0, refine=disk_level)
         out.append((f"disk P1 {disc.m} nodes", disc, ("bdf+jac", "rdcheck/superlu", "rdcheck")))
@@ -301,18 +304,19 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--sizes-1d", type=int, nargs="*", default=[400, 1000, 2000])
     parser.add_argument("--sizes-2d", type=int, nargs="*", default=[64, 128])
     parser.add_argument("--disk-level", type=int, default=6, help="disk refinement (6: 12481 nodes); -1 skips")
+    parser.add_argument("--rect-p1", type=int, default=64, help="cells per side of a P1 square; 0 skips")
     parser.add_argument("--big", type=int, default=256, help="n of an n x n run of ours for memory; 0 skips")
     parser.add_argument("--t-end", type=float, default=200.0)
     parser.add_argument("--target", type=float, default=1e-3, help="final-state relative L2 error to reach")
     parser.add_argument("--no-memory", action="store_true", help="skip the tracemalloc reruns")
     args = parser.parse_args(argv)
     if args.quick:
-        args.sizes_1d, args.sizes_2d, args.disk_level, args.big = [1000], [64], -1, 0
+        args.sizes_1d, args.sizes_2d, args.disk_level, args.big, args.rect_p1 = [1000], [64], -1, 0, 0
     disk = None if args.disk_level < 0 else args.disk_level
     print(f"scheme {sorted(TABLEAUS)}; t_end {args.t_end}; target error {args.target:g}; ladder {LADDER}")
     header = (f"{'case':<22}{'method':<16}{'rtol':>7}{'seconds':>9}{'steps':>7}{'error':>10}{'peak MB':>9}"
               f"{'t / ours':>10}")
-    for label, disc, methods in cases(args.quick, args.sizes_1d, args.sizes_2d, disk):
+    for label, disc, methods in cases(args.quick, args.sizes_1d, args.sizes_2d, disk, args.rect_p1):
         u0 = pulse(disc)
         start = time.perf_counter()
         ref = integrate(disc, DIFFUSION, reaction, jacobian, u0, args.t_end, rtol=1e-7, atol=1e-11).u

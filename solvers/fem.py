@@ -81,7 +81,34 @@ def rectangle_p1(lx: float, ly: float, nx: int, ny: int, lumped: bool = True) ->
     nx = _cell_count(nx, "nx")
     ny = _cell_count(ny, "ny")
     mesh = MeshTri.init_tensor(np.linspace(0.0, lx, nx + 1), np.linspace(0.0, ly, ny + 1))
-    return _from_mesh(mesh, ElementTriP1(), "rectangle", (lx, ly), lumped)
+    disc = _from_mesh(mesh, ElementTriP1(), "rectangle", (lx, ly), lumped)
+    return replace(disc, prolongations=_tensor_prolongations(lx, ly, nx, ny))
+
+
+def _tensor_prolongations(lx: float, ly: float, nx: int, ny: int, coarsest: int = 600) -> tuple[sp.csr_matrix, ...]:
+    """Interpolations between the tensor meshes of ``nx x ny``, ``nx/2 x ny/2``, ... cells, coarsest first.
+
+    Counts are halved while both are even, down to a mesh of at most ``coarsest`` nodes; if none is reached the
+    mesh gets no hierarchy (empty tuple). ``init_tensor`` cuts every rectangle along the same diagonal, so each
+    mesh refines the next coarser one and P1 interpolation (scikit-fem's ``probes``) is exact between them.
+    Cells stretched more than 1.5 : 1 get none either: point smoothing loses its power there (measured V-cycle
+    contraction on 64 x 64 cells: 0.22 at aspect 1.5, 0.38 at 2, 0.85 at 10; the split backend then uses SuperLU).
+    """
+    if max(lx / nx, ly / ny) > 1.5 * min(lx / nx, ly / ny):
+        return ()
+    counts = [(nx, ny)]
+    while (counts[-1][0] + 1) * (counts[-1][1] + 1) > coarsest:
+        cx, cy = counts[-1]
+        if cx % 2 or cy % 2:
+            return ()
+        counts.append((cx // 2, cy // 2))
+    meshes = [MeshTri.init_tensor(np.linspace(0.0, lx, cx + 1), np.linspace(0.0, ly, cy + 1)) for cx, cy in counts]
+    out = []
+    for fine, coarse in zip(meshes[:-1], meshes[1:], strict=True):
+        p = sp.csr_matrix(Basis(coarse, ElementTriP1()).probes(fine.p))
+        p.eliminate_zeros()
+        out.append(p)
+    return tuple(reversed(out))
 
 
 def disk_node_count(level: int) -> int:

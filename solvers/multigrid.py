@@ -1,12 +1,12 @@
 """Geometric multigrid for ``M + g K`` on nested meshes: the per-species diffusion solve of the ``"split"`` backend.
 
-On a mesh made by uniform refinement (the disk of `solvers.fem.disk_p1`) the interpolation from each
-coarser mesh to the next finer is known exactly, and one V-cycle contracts the error of ``(M + g K) x = b``
-by a factor of about 0.1 in the energy norm, independently of the mesh size and of ``g >= 0`` (measured on the
-disk meshes, see `tests/solvers/test_multigrid.py`). One cycle costs a few sparse products per level, and a
-new ``g`` costs a few vector operations and a dense factorisation on the coarsest level: on the 12481-node
-disk 0.86 ms per cycle against 1.2 ms for a SuperLU solve, and 0.8 ms per new ``g`` against 35 ms for a
-SuperLU factorisation (``benchmarks/bench_kernels.py``).
+On a mesh at the top of a nested hierarchy (the refined disk of `solvers.fem.disk_p1`, P1 rectangles whose
+cell counts halve) the interpolation from each coarser mesh to the next finer is known, and one V-cycle
+contracts the error of ``(M + g K) x = b`` by a factor of 0.1 to 0.2 in the energy norm, independently of the
+mesh size and of ``g >= 0`` (measured, see `tests/solvers/test_multigrid.py`). One cycle costs a few sparse
+products per level, and a new ``g`` costs a few vector operations and a dense factorisation on the coarsest
+level: on the 12481-node disk 0.86 ms per cycle against 1.2 ms for a SuperLU solve, and 0.8 ms per new ``g``
+against 35 ms for a SuperLU factorisation (``benchmarks/bench_kernels.py``).
 
 Method (textbook; Briggs, Henson & McCormick 2000, *A Multigrid Tutorial*, 2nd ed., ch. 3 and 10, from
 memory): Galerkin coarse operators ``A_c = P^T A P`` (formed once for ``M`` and ``K`` separately, so that a new

@@ -57,9 +57,10 @@ class Discretisation:
     method : ``"fv"`` (cell-centred finite volumes) or ``"p1"`` (scikit-fem P1 elements).
     grid : cell counts ``(nx,)`` or ``(nx, ny)`` for uniform finite-volume grids (fast cosine-transform
         solves apply), None otherwise. Cell ``(i, j)`` is node ``i * ny + j`` (C order).
-    prolongations : for a mesh made by uniform refinement, the sparse interpolations from each coarser mesh
-        to the next finer, coarsest first, the last onto these nodes (geometric multigrid uses them, see
-        `solvers.multigrid`); empty otherwise.
+    prolongations : for a mesh at the top of a nested hierarchy (the refined P1 disk; P1 rectangles whose
+        cell counts halve down to a small mesh, cells no more stretched than 1.5 : 1), the sparse
+        interpolations from each coarser mesh to the next finer, coarsest first, the last onto these nodes
+        (geometric multigrid uses them, see `solvers.multigrid`); empty otherwise.
     """
 
     coords: np.ndarray

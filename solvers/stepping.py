@@ -415,7 +415,8 @@ class SpeciesFactored:
     definite (``M`` the lumped or consistent mass) and independent of the state. ``species`` says how these
     blocks are solved:
 
-    - ``"multigrid"`` (default where the mesh carries its refinement hierarchy, as the disk does): one
+    - ``"multigrid"`` (default where the mesh carries a hierarchy, `Discretisation.prolongations`: the disk,
+      P1 rectangles whose cell counts halve): one
       geometric V-cycle (`solvers.multigrid.Multigrid`), remade for every step size at the cost of a few
       vector operations, so no factorisation at all.
     - ``"superlu"`` (default elsewhere): SuperLU in nested-dissection order, factorised only when the step
@@ -436,7 +437,7 @@ class SpeciesFactored:
     Measured on the 12481-node P1 disk (``benchmarks/bench_solvers.py``: t = 200, one BLAS thread, loosest
     tolerance of its ladder with final-state error below 1e-3): multigrid 11 steps, 0.58 s at error 4.8e-4;
     SuperLU 13 steps, 5 factorisations per species, 1.24 s at 5.8e-4; scipy's BDF with the analytic
-    Jacobian 5.5 s.
+    Jacobian 5.5 s. On a 64 x 64 P1 square (4225 nodes): 0.23 s against 0.33 s with SuperLU and 0.77 s for BDF.
     """
 
     cheap_rescale = False

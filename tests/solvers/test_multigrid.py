@@ -7,7 +7,7 @@ import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from solvers.fem import disk_p1, interval_p1
+from solvers.fem import disk_p1, interval_p1, rectangle_p1
 from solvers.multigrid import Multigrid
 
 
@@ -45,6 +45,29 @@ def test_disk_hierarchy_interpolates_constants_and_linear_functions():
         moved[coarse.m :] = on_circle[coarse.m :]
         np.testing.assert_allclose((p @ linear)[~moved], (finer.coords @ [0.7, -1.3] + 0.2)[~moved], atol=1e-12)
     assert interval_p1(1.0, 20).prolongations == ()
+
+
+def test_rectangle_hierarchy_is_exact_and_only_where_it_helps():
+    """P1 rectangles: counts halve down to at most 600 nodes and interpolation is exact on linear functions
+    (nested meshes); odd counts, or cells stretched beyond 1.5 : 1, get no hierarchy."""
+    disc = rectangle_p1(10.0, 6.0, 128, 64)
+    assert [p.shape for p in disc.prolongations] == [(2145, 561), (8385, 2145)]
+    coarse = rectangle_p1(10.0, 6.0, 32, 16)
+    p = disc.prolongations[0]
+    np.testing.assert_allclose(p @ (coarse.coords @ [0.4, 1.1] - 0.3),
+                               rectangle_p1(10.0, 6.0, 64, 32).coords @ [0.4, 1.1] - 0.3, atol=1e-12)
+    assert rectangle_p1(10.0, 6.0, 63, 64).prolongations == ()
+    assert rectangle_p1(10.0, 1.0, 64, 64).prolongations == ()
+
+
+@pytest.mark.parametrize("g", [0.0, 1.0, 1e3])
+def test_vcycle_contracts_on_rectangles(g, rng):
+    """On P1 rectangles of cells up to 1.5 : 1 the first cycle leaves under 6 % of the energy error and each
+    later one cuts it 4x or more (measured: 4 % and at most 0.22)."""
+    for dims in ((10.0, 10.0, 64, 64), (10.0, 6.67, 64, 64), (10.0, 6.0, 128, 64)):
+        errs = energy_errors(rectangle_p1(*dims), g, rng, cycles=6)
+        rates = [b / a for a, b in zip(errs, errs[1:], strict=False)]
+        assert errs[0] < 0.06 and max(rates) < 0.25, f"{dims}: errors {errs}"
 
 
 @pytest.mark.parametrize("lumped", [True, False], ids=["lumped", "consistent"])

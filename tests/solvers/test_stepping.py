@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from solvers.fem import disk_p1, interval_p1
+from solvers.fem import disk_p1, interval_p1, rectangle_p1
 from solvers.grids import interval_fv, rectangle_fv
 from solvers.records import probe_nodes
 from solvers.settle import SettleRule, polish, relative_rate
@@ -209,11 +209,13 @@ def test_banded_refuses_a_plane_mesh():
 
 
 def test_split_species_route_follows_the_mesh():
-    """The split backend solves species by multigrid on the refined disk, by SuperLU elsewhere; a multigrid
-    run factorises nothing; an unknown route is refused, naming `species`."""
+    """The split backend solves species by multigrid on meshes with a hierarchy (refined disk, halving P1
+    rectangle), by SuperLU elsewhere; a multigrid run factorises nothing; an unknown route is refused, naming
+    `species`."""
     disk, line = disk_p1(2.0, refine=3), interval_p1(5.0, 40)
-    assert BACKENDS["split"](MolSystem(disk, D_POL, fun_polarity, jac_polarity)).species == "multigrid"
-    assert BACKENDS["split"](MolSystem(line, D_POL, fun_polarity, jac_polarity)).species == "superlu"
+    for disc, route in ((disk, "multigrid"), (rectangle_p1(2.0, 2.0, 32, 32), "multigrid"), (line, "superlu"),
+                        (rectangle_p1(2.0, 2.0, 31, 32), "superlu")):
+        assert BACKENDS["split"](MolSystem(disc, D_POL, fun_polarity, jac_polarity)).species == route
     res = integrate(disk, D_POL, fun_polarity, jac_polarity, pulse_start(disk), 5.0, backend="split")
     assert res.status == "reached-end" and res.nlu == 0
     with pytest.raises(ValueError, match="`species`"):
