@@ -324,6 +324,29 @@ def test_blow_up_diverges():
         assert res.t_final < 1.0
 
 
+def test_blow_up_confirmed_by_the_exact_backend():
+    """Our stepper reports `diverged` only when a rerun at a tenth of rtol with an exact W diverges too."""
+    disc = interval_fv(1.0, 20)
+    u0 = (1.0 + 0.1 * np.cos(np.pi * disc.coords[:, 0]))[None]
+    res = integrate(disc, [0.1], fun_square, jac_square, u0, 3.0, rtol=1e-3)
+    assert res.status == "diverged" and "; confirmed at rtol 0.0001 with the exact `banded` backend" in res.message
+
+
+def test_loose_tolerance_blow_up_is_not_an_outcome():
+    """Regression: at rtol 0.5 the cosine-transform W stepped the polarity problem out of the physical states
+    and it diverged; the rerun at rtol 0.05 with the exact LU forms the pattern, and that run is reported
+    (observers initialised and finalised once)."""
+    disc = rectangle_fv(10.0, 10.0, 24, 24)
+    obs = _Recorder(stop_after=10**6)
+    res = integrate(disc, D_POL, fun_polarity, jac_polarity, pulse_start(disc), 200.0, rtol=0.5, observers=[obs])
+    assert res.status == "reached-end"
+    assert "with rtol 0.5" in res.message and "not confirmed at rtol 0.05 with the exact `lu` backend" in res.message
+    assert res.u[0].max() > 2 * res.u[0].min()
+    kinds = [c[0] for c in obs.calls]
+    assert kinds.count("initialize") == 1 and kinds.count("finalize") == 1 and kinds[-1] == "finalize"
+    assert obs.calls[-1] == ("finalize", "reached-end")
+
+
 def test_short_run_reaches_end():
     """A t_end too short to settle gives reached-end, with the history starting at t = 0."""
     disc = interval_fv(10.0, 100)
