@@ -112,13 +112,14 @@ def test_grid_conductances_refuse_other_operators():
     assert grid_conductances(bent.tocsr(), disc.grid) is None
 
 
-@pytest.mark.parametrize("species", ["multigrid", "superlu"])
-@pytest.mark.parametrize("options", [{}, {"krylov": 0, "theta": 1.0}])
-def test_split_backend_matches_lu_on_disk(options, species):
+@pytest.mark.parametrize(("species", "options", "lumped"), [
+    ("multigrid", {}, True), ("multigrid", {}, False), ("multigrid", {"krylov": 0, "theta": 1.0}, True),
+    ("superlu", {}, True), ("superlu", {"krylov": 0, "theta": 1.0}, True)])
+def test_split_backend_matches_lu_on_disk(species, options, lumped):
     """The per-species ("split") backend, its species solved by multigrid or by SuperLU, and the coupled sparse
-    LU agree on a P1 disk at tight tolerance; totals kept to round-off."""
+    LU agree on a P1 disk at tight tolerance (lumped or consistent mass); totals kept to round-off."""
     options = {**options, "species": species}
-    disc = disk_p1(3.0, refine=3)
+    disc = disk_p1(3.0, refine=3, lumped=lumped)
     u0 = edge_pulse(disc)
     runs = [integrate(disc, D_WP, fun_wave_pinning, jac_wave_pinning, u0, 50.0, rtol=1e-7, atol=1e-10,
                       backend=b, backend_options=o) for b, o in (("lu", {}), ("split", options))]
