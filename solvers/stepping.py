@@ -428,23 +428,25 @@ class SpeciesFactored:
     keep conserved totals (``1^T K = 0``, ``w^T J_r = 0``; the V-cycle is shifted to keep them too). With
     ``krylov=0`` the plain factorisation is ``W`` (a valid W-method, any ``W`` keeps the order) and the
     stepper's dead band decides when to refactorise. Once the relative rate falls below ``rest`` the stepper
-    hands over to ``"lu"``: with large steps near rest one GMRES step leaves stiff modes barely damped and
-    the rate hovered at 1e-5 .. 1e-4 up to t = 5000 on the 3169-node disk (measured); GMRES solved to a
-    residual of 1e-3 settled but cost more than the handover (12481 nodes, settle at 1e-6: 3.6 s with
-    ``rest = 1e-3``, 6.0 s with 3e-3, 6.1 s with ``"lu"`` throughout; settle times differ, 1750 .. 3500, so
-    this is rough).
+    hands over to ``"lu"`` (see `RosenbrockW._maybe_switch`): with large steps near rest one GMRES step leaves
+    stiff modes barely damped and the rate hovered at 1e-5 .. 1e-4 up to t = 5000 on the 3169-node disk
+    (measured, SuperLU species solves); GMRES solved to a residual of 1e-3 settled but cost more than the
+    handover. Runs to a settled state (rate 1e-6) on the 12481-node disk, ``benchmarks/bench_settle.py``:
+    at rtol 1e-4, 2.3 s with ``rest = 3e-5`` against 3.2 s with 1e-3 (multigrid), 3.7 s against 4.0 s
+    (SuperLU); at rtol 1e-3, 1.4 s against 1.9 s, 2.2 s against 2.6 s; same final state to 1e-7. With
+    ``rest = 0`` (no handover on the rate) it did not settle by t = 1e4 (measured once, ad hoc).
 
     Measured on the 12481-node P1 disk (``benchmarks/bench_solvers.py``: t = 200, one BLAS thread, loosest
-    tolerance of its ladder with final-state error below 1e-3): multigrid 11 steps, 0.58 s at error 4.8e-4;
-    SuperLU 13 steps, 5 factorisations per species, 1.24 s at 5.8e-4; scipy's BDF with the analytic
-    Jacobian 5.5 s. On a 64 x 64 P1 square (4225 nodes): 0.23 s against 0.33 s with SuperLU and 0.77 s for BDF.
+    tolerance of its ladder with final-state error below 1e-3): multigrid 15 steps, 0.46 s at error 8.9e-4;
+    SuperLU 13 steps, 5 factorisations per species, 0.94 s at 5.5e-4; scipy's BDF with the analytic
+    Jacobian 4.7 s. On a 64 x 64 P1 square (4225 nodes): 0.23 s against 0.28 s with SuperLU and 0.77 s for BDF.
     """
 
     cheap_rescale = False
     exact = False
 
     def __init__(self, system: MolSystem, theta: float = np.inf, cache: int = 4, krylov: int = 1,
-                 reuse: float = 3.0, rest: float = 1e-3, species: str = "auto") -> None:
+                 reuse: float = 3.0, rest: float = 3e-5, species: str = "auto") -> None:
         if species == "auto":
             species = "multigrid" if system.disc.prolongations else "superlu"
         if species not in ("multigrid", "superlu"):
