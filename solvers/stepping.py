@@ -432,9 +432,10 @@ class SpeciesFactored:
     stiff modes barely damped and the rate hovered at 1e-5 .. 1e-4 up to t = 5000 on the 3169-node disk
     (measured, SuperLU species solves); GMRES solved to a residual of 1e-3 settled but cost more than the
     handover. Runs to a settled state (rate 1e-6) on the 12481-node disk, ``benchmarks/bench_settle.py``:
-    at rtol 1e-4, 2.3 s with ``rest = 3e-5`` against 3.2 s with 1e-3 (multigrid), 3.7 s against 4.0 s
-    (SuperLU); at rtol 1e-3, 1.4 s against 1.9 s, 2.2 s against 2.6 s; same final state to 1e-7. With
-    ``rest = 0`` (no handover on the rate) it did not settle by t = 1e4 (measured once, ad hoc).
+    at rtol 1e-4, 1.9 s with ``rest = 3e-5`` against 2.8 s with 1e-3 (multigrid), 3.3 s against 3.7 s
+    (SuperLU); at rtol 1e-3, 1.0 s against 1.4 s, 1.9 s against 2.1 s; final states within the settle
+    tolerance's reach of each other (1e-6 .. 5e-5). With ``rest = 0`` (no handover on the rate) it did not
+    settle by t = 1e4 (measured once, ad hoc).
 
     Measured on the 12481-node P1 disk (``benchmarks/bench_solvers.py``: t = 200, one BLAS thread, loosest
     tolerance of its ladder with final-state error below 1e-3): multigrid 15 steps, 0.46 s at error 8.9e-4;
@@ -1186,6 +1187,16 @@ def _confirm_divergence(system, u0, t_end, rtol, atol, settle, times, observers,
     return replace(run, message=note + run.message)
 
 
+def _longest_step(settle: SettleRule, t: float) -> float:
+    """The longest step allowed at time ``t`` of a run with a settle rule: the window, or a tenth of ``t``.
+
+    So the history keeps at least 24 rows per decade of time, and neither the settle rule nor an oscillation
+    verdict rests on one huge step: a 1D run of the demo leapt from t = 1809 (rate 7e-5) to t_end = 20000 in
+    one step, still by then, but with one row in its last window it ended unsettled.
+    """
+    return max(settle.window, 0.1 * t)
+
+
 def _attempt(system, u0, t_end, method, rtol, atol, settle, times, observers, bound, options) -> RunResult:
     """One integration from ``u0``: the stepping loop of `integrate` (observers already initialised)."""
     disc = system.disc
@@ -1211,7 +1222,10 @@ def _attempt(system, u0, t_end, method, rtol, atol, settle, times, observers, bo
                 snap_t.append(0.0)
                 snap_u.append(u0.copy())
                 next_snap += 1
+        longest = np.inf if solver is None else float(solver.max_step)
         while status is None:
+            if settle is not None:
+                solver.max_step = min(longest, _longest_step(settle, solver.t))
             msg = solver.step()
             u = solver.y.reshape(system.shape)
             if solver.status == "failed":

@@ -266,8 +266,9 @@ def test_settle_rule_fires_on_pattern(settled_pattern):
 
 
 def test_polish_converges_and_keeps_total(settled_pattern):
-    """Newton polish from a still-moving state (t = 100) reaches the settled pattern and keeps the total."""
-    disc, res, _ = settled_pattern
+    """Newton polish from a still-moving state (t = 100) reaches the pattern polished from the settled run (to
+    1e-9) and keeps the total; the settled run itself is within 1e-4 of it (rate below 1e-6 is not distance)."""
+    disc, res, settled = settled_pattern
     early = integrate(disc, D_POL, fun_polarity, jac_polarity, pulse_start(disc), 100.0)
     assert early.history.rate[-1] > 1e-6
     pol = polish(disc, D_POL, fun_polarity, jac_polarity, early.u, conserved_rows=np.array([[1.0, 1.0]]))
@@ -275,7 +276,8 @@ def test_polish_converges_and_keeps_total(settled_pattern):
     assert pol.residual < 1e-10 and pol.iterations >= 1
     total = disc.weights @ early.u.sum(axis=0)
     assert abs(disc.weights @ pol.u.sum(axis=0) - total) < 1e-12 * total
-    assert np.linalg.norm(pol.u - res.u) / np.linalg.norm(res.u) < 1e-6
+    assert np.linalg.norm(pol.u - settled.u) / np.linalg.norm(settled.u) < 1e-9
+    assert np.linalg.norm(res.u - settled.u) / np.linalg.norm(settled.u) < 1e-4
 
 
 def test_polish_reports_far_start():
