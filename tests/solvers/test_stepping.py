@@ -265,6 +265,17 @@ def test_settle_rule_fires_on_pattern(settled_pattern):
     assert not rule.settled(res.history.t[:-5], res.history.rate[:-5], 1e-4)
 
 
+def test_settle_rule_bounds_the_steps(settled_pattern):
+    """With a settle rule no step is longer than the window or a tenth of the time reached (regression: a demo
+    run leapt from t = 1809 to t_end = 20000 in one step and ended unsettled); without one, steps are free."""
+    disc, res, settled = settled_pattern
+    t = res.history.t
+    assert np.all(np.diff(t) <= np.maximum(50.0, 0.1 * t[:-1]) * (1 + 1e-12))
+    assert np.diff(t).max() > 50.0  # the tenth-of-t bound was reached, not only the window
+    free = integrate(disc, D_POL, fun_polarity, jac_polarity, settled.u, 1e4)
+    assert np.diff(free.history.t).max() > 1e3
+
+
 def test_polish_converges_and_keeps_total(settled_pattern):
     """Newton polish from a still-moving state (t = 100) reaches the pattern polished from the settled run (to
     1e-9) and keeps the total; the settled run itself is within 1e-4 of it (rate below 1e-6 is not distance)."""
