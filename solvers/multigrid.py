@@ -39,7 +39,7 @@ __all__ = ["Multigrid"]
 class _Level:
     """One level: ``M`` and ``K`` on a common sparsity pattern, with the bounds a new ``g`` needs."""
 
-    pattern: sp.csr_matrix  # structure shared by M and K (its data is overwritten with M + g K)
+    pattern: sp.csr_matrix  # structure shared by M and K (`update` puts M + g K on its indices)
     mass: np.ndarray  # entries of M on the pattern
     stiffness: np.ndarray  # entries of K on the pattern
     mass_diag: np.ndarray
@@ -117,7 +117,6 @@ class Multigrid:
         self.levels = levels
         self.prolongations = prols
         self.restrictions = [sp.csr_matrix(p.T) for p in prols]
-        self.g = None
 
     @property
     def sizes(self) -> list[int]:
@@ -126,7 +125,6 @@ class Multigrid:
 
     def update(self, g: float) -> None:
         """Make the cycle solve ``(M + g K) x = b``: every level's matrix, diagonal and Chebyshev interval."""
-        self.g = float(g)
         self._a, self._dinv, self._upper = [], [], []
         for lev in self.levels:
             a = sp.csr_matrix((lev.mass + g * lev.stiffness, lev.pattern.indices, lev.pattern.indptr),

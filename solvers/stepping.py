@@ -632,6 +632,11 @@ class CosineFactored:
         return self._blocks.solve(z)
 
 
+def exact_backend(disc: Discretisation) -> str:
+    """The backend with the exact ``W`` for the mesh: ``"banded"`` on chains of nodes (1D), ``"lu"`` elsewhere."""
+    return "banded" if line_order(disc) is not None else "lu"
+
+
 def choose_backend(disc: Discretisation) -> str:
     """``"banded"`` on 1D meshes, ``"dct"`` on uniform finite-volume grids in 2D, ``"split"`` on other 2D meshes.
 
@@ -641,7 +646,7 @@ def choose_backend(disc: Discretisation) -> str:
     and with multigrid species solves it takes half that again (see `SpeciesFactored`).
     """
     if disc.dim < 2:
-        return "banded" if line_order(disc) is not None else "lu"
+        return exact_backend(disc)
     return "dct" if cosine_applies(disc) else "split"
 
 
@@ -1178,7 +1183,7 @@ def _confirm_divergence(system, u0, t_end, rtol, atol, settle, times, observers,
     0.5 with the exact LU, and reached its pattern at 0.1 and below (measured). A real blow-up diverges at
     every tolerance, so `diverged` stands only when the second run diverges too; the message says which.
     """
-    exact = "banded" if line_order(system.disc) is not None else "lu"
+    exact = exact_backend(system.disc)
     options = {**options, "backend": exact, "backend_options": {}}
     run = _attempt(system, u0, t_end, "rdcheck", rtol / 10, atol, settle, times, observers, bound, options)
     said = "confirmed" if run.status == "diverged" else "not confirmed"
